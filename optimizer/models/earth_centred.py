@@ -1,0 +1,107 @@
+"""Earth-centred models with the Moon (and optionally the Sun and Earth's J2) as perturbers.
+
+One class serves two named configurations:
+
+* ``"earth-moon"``: Earth and a Moon on a prescribed orbit (usually
+  :class:`optimizer.ephemeris.CircularMoon`);
+* ``"ephemeris"``: Earth, Moon and Sun at DE421 positions (a
+  :class:`optimizer.ephemeris.ChebyshevEphemeris` fit), optional Earth J2.
+
+The frame is Earth-centred, so each third body also carries the indirect term (its pull on
+Earth's centre).  J2 acts about the ICRF z axis: the true pole has moved about 0.4 degrees from it
+by precession since J2000, a small error on a perturbation that is itself small at lunar distance.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ..constants import GM_EARTH, GM_MOON, GM_SUN, J2_EARTH, R_EARTH, R_MOON
+from .base import Body, ForceModel, point_mass, third_body
+
+
+class EarthCentred(ForceModel):
+    """Earth + Moon (+ Sun, + J2), Earth-centred inertial, km, km/s, TDB seconds past J2000.
+
+    Parameters
+    ----------
+    ephemeris : object
+        Gives ``moon(t)``, ``moon_velocity(t)``, ``moon_casadi(t)`` and, when ``sun`` is true,
+        ``sun(t)`` and ``sun_casadi(t)`` (km, geocentric, ICRF axes).
+    sun : bool
+        Include the Sun as a third body.
+    j2 : bool
+        Include Earth's J2 zonal harmonic.
+    name : str
+        Configuration name written into output files.
+    """
+
+    def __init__(self, ephemeris, *, sun: bool = True, j2: bool = False, name: str = "ephemeris",
+                 gm_earth: float = GM_EARTH, gm_moon: float = GM_MOON, gm_sun: float = GM_SUN):
+        self.ephemeris = ephemeris
+        self.sun = bool(sun)
+        self.j2 = bool(j2)
+        self.name = name
+        self.gm_earth, self.gm_moon, self.gm_sun = float(gm_earth), float(gm_moon), float(gm_sun)
+        self.earth = Body("earth", self.gm_earth, R_EARTH)
+        self.moon = Body("moon", self.gm_moon, R_MOON)
+
+    # -- numpy ---------------------------------------------------------------------------------
+    def acceleration(self, t, r, v=None):
+        x, y, z = float(r[0]), float(r[1]), float(r[2])
+        ax, ay, az = point_mass(self.gm_earth, x, y, z)
+        m = self.ephemeris.moon(t)
+        px, py, pz = third_body(self.gm_moon, x, y, z, m[0], m[1], m[2])
+        ax, ay, az = ax + px, ay + py, az + pz
+        if self.sun:
+            s = self.ephemeris.sun(t)
+            px, py, pz = third_body(self.gm_sun, x, y, z, s[0], s[1], s[2])
+            ax, ay, az = ax + px, ay + py, az + pz
+        if self.j2:
+            r2 = x * x + y * y + z * z
+            k = -1.5 * J2_EARTH * self.gm_earth * R_EARTH**2 / (r2 * r2 * math.sqrt(r2))
+            f = 5.0 * z * z / r2
+            ax, ay, az = ax + k * x * (1.0 - f), ay + k * y * (1.0 - f), az + k * z * (3.0 - f)
+        return np.array((ax, ay, az))
+
+    def moon_position(self, t):
+        return np.asarray(self.ephemeris.moon(t), dtype=float)
+
+    def moon_velocity(self, t):
+        return np.asarray(self.ephemeris.moon_velocity(t), dtype=float)
+
+    # -- CasADi --------------------------------------------------------------------------------
+    def acceleration_casadi(self, t, r, v=None):
+        import casadi as ca
+
+        def pull(gm, d):
+            return gm * d / ca.power(ca.sumsqr(d), 1.5)
+
+        acc = -pull(self.gm_earth, r)
+        m = self.ephemeris.moon_casadi(t)
+        acc += pull(self.gm_moon, m - r) - pull(self.gm_moon, m)
+        if self.sun:
+            s = self.ephemeris.sun_casadi(t)
+            acc += pull(self.gm_sun, s - r) - pull(self.gm_sun, s)
+        if self.j2:
+            rr = ca.sumsqr(r)
+            zz = r[2] ** 2 / rr
+            scale = -1.5 * J2_EARTH * self.gm_earth * R_EARTH**2 / ca.power(rr, 2.5)
+            acc += scale * ca.vertcat(r[0] * (1 - 5 * zz), r[1] * (1 - 5 * zz), r[2] * (3 - 5 * zz))
+        return acc
+
+    def moon_position_casadi(self, t):
+        return self.ephemeris.moon_casadi(t)
+
+    def describe(self):
+        return {
+            "name": self.name,
+            "frame": self.frame,
+            "bodies": ["earth", "moon"] + (["sun"] if self.sun else []),
+            "earth_j2": self.j2,
+            "gm_km3_s2": {"earth": self.gm_earth, "moon": self.gm_moon,
+                          **({"sun": self.gm_sun} if self.sun else {})},
+            "ephemeris": self.ephemeris.describe(),
+        }

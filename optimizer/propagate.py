@@ -1,0 +1,199 @@
+"""The independent propagator: adaptive-step DOP853 on the numpy force models.
+
+This module is the referee of every optimum, so it must stay independent of the transcription:
+it never imports CasADi nor anything that builds the NLP (a test enforces this).
+
+Epochs and states are in the model's units (km, km/s, TDB seconds past J2000 for the
+Earth-centred models).  Burns are impulsive: a velocity change in the model frame at an epoch.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.integrate import solve_ivp
+
+#: Tolerances used to verify optima (relative, absolute in model units).
+VERIFY_RTOL = 1e-12
+VERIFY_ATOL = 1e-12
+
+EVENT_NAMES = ("perilune", "perigee", "entry", "impact_earth", "impact_moon")
+
+
+@dataclass(frozen=True)
+class Event:
+    """An event found by root-finding on the dense output.
+
+    Attributes
+    ----------
+    name : str
+        One of ``EVENT_NAMES``.
+    t : float
+        Epoch of the event.
+    y : ndarray, shape (6,)
+        State at the event (model frame).
+    """
+
+    name: str
+    t: float
+    y: np.ndarray
+
+
+@dataclass
+class Arc:
+    """One propagated coast.
+
+    Attributes
+    ----------
+    t : ndarray, shape (N,)
+        Accepted step epochs, first = start, last = end (or the terminal event).
+    y : ndarray, shape (6, N)
+        States at ``t``.
+    events : list of Event
+        Events in time order.
+    status : str
+        ``"completed"`` or ``"stopped at <event>"``.
+    nfev : int
+        Right-hand-side evaluations.
+    """
+
+    t: np.ndarray
+    y: np.ndarray
+    events: list[Event]
+    status: str
+    nfev: int
+    sol: object = field(default=None, repr=False)
+
+    def state(self, t):
+        """Dense-output state at epoch(s) ``t`` (shape (6,) or (6, M))."""
+        return self.sol(t)
+
+    def first(self, name: str) -> Event | None:
+        """The first event called ``name``, or None."""
+        return next((e for e in self.events if e.name == name), None)
+
+
+def _event_functions(model, names, entry_radius, terminal, backward=False):
+    """Event functions for solve_ivp; returns (functions, their names).
+
+    Perilune and perigee are minima of distance in time whatever the direction of integration,
+    so their sign change is reversed when integrating backwards; radius crossings (entry,
+    impacts) are taken in the direction of integration.
+    """
+    turn = -1.0 if backward else 1.0
+    funcs, labels = [], []
+    has_moon = getattr(model, "moon", None) is not None
+
+    def add(fn, name, direction, stop):
+        fn.direction = direction
+        fn.terminal = stop
+        funcs.append(fn)
+        labels.append(name)
+
+    for name in names:
+        if name not in EVENT_NAMES:
+            raise ValueError(f"unknown event {name!r}; expected one of {', '.join(EVENT_NAMES)}")
+        if name in ("perilune", "impact_moon") and not has_moon:
+            continue
+        if name == "perilune":
+            def f(t, y):
+                d = y[:3] - model.moon_position(t)
+                return float(np.dot(d, y[3:] - model.moon_velocity(t)))
+            add(f, name, turn, name in terminal)
+        elif name == "perigee":
+            def f(t, y):
+                return float(np.dot(y[:3] - model.earth_position(t), y[3:] - model.earth_velocity(t)))
+            add(f, name, turn, name in terminal)
+        elif name == "entry":
+            if entry_radius is None:
+                raise ValueError("the entry event needs entry_radius")
+            def f(t, y):
+                return float(np.linalg.norm(y[:3] - model.earth_position(t))) - entry_radius
+            add(f, name, -1.0, "entry" in terminal)
+        elif name == "impact_earth":
+            def f(t, y):
+                return float(np.linalg.norm(y[:3] - model.earth_position(t))) - model.earth.radius
+            add(f, name, -1.0, True)
+        elif name == "impact_moon":
+            def f(t, y):
+                return float(np.linalg.norm(y[:3] - model.moon_position(t))) - model.moon.radius
+            add(f, name, -1.0, True)
+    return funcs, labels
+
+
+def propagate(model, t0: float, y0, t1: float, *, events=(), entry_radius: float | None = None,
+              terminal=("entry",), rtol: float = VERIFY_RTOL, atol: float = VERIFY_ATOL,
+              max_step: float = np.inf) -> Arc:
+    """Propagate a coast with DOP853 and find events on the way.
+
+    Parameters
+    ----------
+    model : ForceModel
+        Numpy side of the force model.
+    t0, t1 : float
+        Start and end epochs (``t1 < t0`` propagates backwards).
+    y0 : array_like, shape (6,)
+        Start state.
+    events : sequence of str
+        Any of ``EVENT_NAMES``.  Impacts always stop the arc; ``terminal`` lists others that do.
+    entry_radius : float, optional
+        Geocentric radius of the entry interface (model length unit), for the ``entry`` event.
+    rtol, atol : float
+        DOP853 tolerances (defaults are the verification tolerances).
+
+    Returns
+    -------
+    Arc
+    """
+    y0 = np.asarray(y0, dtype=float)
+    if y0.shape != (6,) or not np.all(np.isfinite(y0)):
+        raise ValueError(f"y0 must be 6 finite numbers, got {y0!r}")
+    if not (np.isfinite(t0) and np.isfinite(t1)) or t0 == t1:
+        raise ValueError(f"need two different finite epochs, got t0={t0!r}, t1={t1!r}")
+    funcs, labels = _event_functions(model, events, entry_radius, set(terminal), backward=t1 < t0)
+    sol = solve_ivp(model.rhs, (t0, t1), y0, method="DOP853", rtol=rtol, atol=atol,
+                    dense_output=True, events=funcs or None, max_step=max_step)
+    if sol.status < 0:
+        raise RuntimeError(f"propagation failed at t={sol.t[-1]!r}: {sol.message}")
+    found = []
+    if funcs:
+        for label, te, ye in zip(labels, sol.t_events, sol.y_events):
+            found += [Event(label, float(t), np.array(y)) for t, y in zip(te, ye)]
+    found.sort(key=lambda e: e.t if t1 > t0 else -e.t)
+    status = "completed"
+    if sol.status == 1:
+        status = "stopped at " + next(
+            lbl for lbl, te, fn in zip(labels, sol.t_events, funcs) if fn.terminal and len(te))
+    return Arc(sol.t, sol.y, found, status, int(sol.nfev), sol.sol)
+
+
+def propagate_burns(model, t0: float, y0, burns, t1: float, **kwargs) -> list[Arc]:
+    """Propagate through a sequence of impulsive burns.
+
+    Parameters
+    ----------
+    burns : sequence of (epoch, dv)
+        Epochs in ``(t0, t1)`` in time order; ``dv`` shape (3,) in the model frame.
+    **kwargs
+        Passed to :func:`propagate` for every arc.
+
+    Returns
+    -------
+    list of Arc
+        One arc per coast (``len(burns) + 1`` unless an arc stops early).
+    """
+    arcs, t, y = [], float(t0), np.asarray(y0, dtype=float).copy()
+    for epoch, dv in burns:
+        if not t <= epoch <= t1:
+            raise ValueError(f"burn epoch {epoch!r} outside the propagation span [{t}, {t1}]")
+        if epoch > t:
+            arc = propagate(model, t, y, epoch, **kwargs)
+            arcs.append(arc)
+            if arc.status != "completed":
+                return arcs
+            y = arc.y[:, -1].copy()
+        y[3:] += np.asarray(dv, dtype=float)
+        t = float(epoch)
+    arcs.append(propagate(model, t, y, t1, **kwargs))
+    return arcs

@@ -1,0 +1,102 @@
+"""Wall time of a 10-day ephemeris-model coast: our DOP853 propagator against heyoka.
+
+The coast is the invented translunar-like one of ``tests/test_propagate.py`` (Earth + Moon + Sun
+from a Chebyshev fit of DE421, no J2), integrated at the verification tolerances
+(rtol = atol = 1e-12).  Heyoka (Taylor method, tol 1e-15) integrates the same equations on the
+same Chebyshev series; its JIT compilation is timed apart from its integration.
+
+Run: python tests/benchmarks/bench_propagate.py [--repeat N] [--profile]
+"""
+
+from __future__ import annotations
+
+import argparse
+import cProfile
+import os
+import pstats
+import sys
+import time
+import timeit
+
+import numpy as np
+
+sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))  # tests/
+
+import heyoka_reference  # noqa: E402
+from optimizer.constants import SECONDS_PER_DAY  # noqa: E402
+from optimizer.ephemeris import DE421, ChebyshevEphemeris  # noqa: E402
+from optimizer.models import EarthCentred  # noqa: E402
+from optimizer.propagate import VERIFY_ATOL, VERIFY_RTOL, propagate  # noqa: E402
+
+DAY = SECONDS_PER_DAY
+T0 = 9000 * DAY  # 2024-08-22 12:00 TDB
+T1 = T0 + 10 * DAY
+VERIFY_EVENTS = ("perilune", "perigee", "impact_earth", "impact_moon")
+
+
+def coast_start(fit):
+    """Same start as tests/test_propagate.py::_translunar_like_coast."""
+    rm, vm = fit.moon(T0), fit.moon_velocity(T0)
+    u = -rm / np.linalg.norm(rm)
+    h = np.cross(rm, vm)
+    w = np.cross(h / np.linalg.norm(h), u)
+    return np.concatenate([2.0e5 * u, 1.0 * u + 0.8 * w])
+
+
+def best_of(fn, repeat):
+    return min(timeit.repeat(fn, number=1, repeat=repeat))
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--repeat", type=int, default=7, help="runs per figure (best is kept)")
+    parser.add_argument("--profile", action="store_true", help="print a cProfile of our coast")
+    args = parser.parse_args(argv)
+
+    eph = DE421()
+    start = time.perf_counter()
+    fit = ChebyshevEphemeris.fit(eph, T0 - DAY, T1 + DAY)
+    fit_s = time.perf_counter() - start
+    eph.close()
+    model = EarthCentred(fit, sun=True, j2=False)
+    y0 = coast_start(fit)
+
+    arc = propagate(model, T0, y0, T1)
+    ours = best_of(lambda: propagate(model, T0, y0, T1), args.repeat)
+    ours_events = best_of(lambda: propagate(model, T0, y0, T1, events=VERIFY_EVENTS), args.repeat)
+    n_rhs = 20000
+    rhs_call = min(timeit.repeat(lambda: model.rhs(T0 + 1234.5, y0), number=n_rhs, repeat=5)) / n_rhs
+
+    ta, compile_s = heyoka_reference.build_integrator(model, T0, y0)
+    y_ref, _, nsteps = heyoka_reference.propagate_heyoka(ta, T0, y0, T1)
+    hey = min(heyoka_reference.propagate_heyoka(ta, T0, y0, T1)[1] for _ in range(args.repeat))
+
+    print(f"10-day ephemeris coast (Earth+Moon+Sun, Chebyshev fit degrees {fit.degree}), "
+          f"best of {args.repeat}")
+    print(f"  Chebyshev fit of DE421 (12-day window)   {fit_s * 1e3:9.2f} ms (once per scenario)")
+    print(f"  ours: DOP853 rtol={VERIFY_RTOL:g} atol={VERIFY_ATOL:g}    {ours * 1e3:9.2f} ms  "
+          f"({arc.t.size - 1} steps, {arc.nfev} rhs calls)")
+    print(f"  ours with events {', '.join(VERIFY_EVENTS)}")
+    print(f"                                           {ours_events * 1e3:9.2f} ms")
+    print(f"    rhs alone: {rhs_call * 1e6:.2f} us per call x {arc.nfev} = "
+          f"{rhs_call * arc.nfev * 1e3:.2f} ms ({100 * rhs_call * arc.nfev / ours:.0f}% of the coast; "
+          "the rest is solve_ivp's stepping and dense output)")
+    print(f"  heyoka tol={heyoka_reference.HEYOKA_TOL:g}: compile                {compile_s * 1e3:9.2f} ms")
+    print(f"  heyoka integration                       {hey * 1e3:9.2f} ms  ({nsteps} steps)")
+    print(f"  ratio ours / heyoka integration          {ours / hey:9.1f}")
+    print(f"  ratio ours / heyoka compile+integration  {ours / (compile_s + hey):9.3f}")
+    print(f"  final position difference                {np.linalg.norm(arc.y[:3, -1] - y_ref[:3]) * 1e6:9.2f} mm")
+    print(f"  goals: ours < 500 ms: {'met' if ours < 0.5 else 'NOT met'}; "
+          f"within 5x of heyoka integration: {'met' if ours < 5 * hey else 'NOT met'}")
+
+    if args.profile:
+        prof = cProfile.Profile()
+        prof.enable()
+        for _ in range(10):
+            propagate(model, T0, y0, T1)
+        prof.disable()
+        pstats.Stats(prof).sort_stats("tottime").print_stats(12)
+
+
+if __name__ == "__main__":
+    main()
