@@ -1,0 +1,384 @@
+"""Solve a free-return problem: guess, NLP with IPOPT, independent verification, mesh refinement.
+
+``solve(problem) -> Plan`` is the whole loop:
+
+1. **Guess.**  Propagate the coast with the burns at their guessed epochs; correct the first burn
+   by linear targeting (Newton steps of least norm on the perilune altitude and the osculating
+   return perigee, finite-difference Jacobian on the numpy model) so that the path goes round the
+   Moon and comes back to the entry interface; sample each coast at equal steps of the regularised
+   variable.  A previous Plan can replace all of this (warm start).
+2. **NLP.**  :class:`~optimizer.transcription.Transcription` on the problem's mesh, IPOPT with exact
+   derivatives.
+3. **Verify.**  Re-propagate the burns with :mod:`optimizer.propagate` (nothing shared with the
+   NLP but the physics) and compare.  If a tolerance is missed, the coasts whose segments disagree
+   with the propagator get more integration steps and the NLP is re-solved from its last answer.
+   A plan that still fails is returned as ``"unverified"`` with the reason, never as an optimum.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+
+import casadi as ca
+import numpy as np
+
+from . import __version__
+from .models import build_model
+from .plan import EventRecord, Plan
+from .problem import Problem
+from .propagate import propagate
+from .transcription import Transcription
+from .verify import arrival_record, make_burn, perilune_record, verify
+
+GUESS_RTOL = 1e-9
+#: Local disagreement (km) between an NLP segment and the propagator above which a coast is refined.
+SEGMENT_TOL_KM = 1e-3
+
+IPOPT_OPTIONS = {
+    "ipopt.print_level": 0,
+    "print_time": False,
+    "ipopt.sb": "yes",
+    "ipopt.max_iter": 300,
+    "ipopt.tol": 1e-9,
+    "ipopt.constr_viol_tol": 1e-10,
+    "ipopt.acceptable_tol": 1e-7,
+    "ipopt.acceptable_constr_viol_tol": 1e-9,
+    "ipopt.mu_strategy": "adaptive",
+    "ipopt.nlp_scaling_method": "gradient-based",
+}
+WARM_OPTIONS = {
+    "ipopt.warm_start_init_point": "yes",
+    "ipopt.warm_start_bound_push": 1e-9,
+    "ipopt.warm_start_mult_bound_push": 1e-9,
+    "ipopt.mu_init": 1e-6,
+}
+
+
+class SolveError(ValueError):
+    """The problem cannot be set up (unsupported option, no lunar pass in the guess...)."""
+
+
+# -- guess ----------------------------------------------------------------------------------------
+def _sundman_rate(model, t, y):
+    """omega = sqrt(mu_E/r_E^3 + mu_M/r_M^3) along states ``y`` (6, K) at epochs ``t`` (K,)."""
+    re = np.linalg.norm(y[:3], axis=0)
+    rm = np.linalg.norm(y[:3] - model.moon_position(t), axis=0)
+    return np.sqrt(model.gm_earth / re**3 + model.gm_moon / rm**3)
+
+
+def sample_phase(model, arc, t_a, t_b, n):
+    """Nodes of one coast at equal steps of the regularised variable.
+
+    Returns (states (7, n+1) in km, km/s, TDB s; phase length S in scaled units).
+    """
+    inside = arc.t[(arc.t > min(t_a, t_b)) & (arc.t < max(t_a, t_b))]
+    knots = np.unique(np.r_[t_a, inside, t_b])
+    sub = np.linspace(0.0, 1.0, 9)[:-1]
+    grid = np.r_[(knots[:-1, None] + np.diff(knots)[:, None] * sub).ravel(), t_b]
+    y = arc.state(grid)
+    w = _sundman_rate(model, grid, y)
+    s = np.r_[0.0, np.cumsum(0.5 * (w[1:] + w[:-1]) * np.diff(grid))]
+    targets = np.linspace(0.0, s[-1], n + 1)
+    tn = np.interp(targets, s, grid)
+    states = np.vstack([arc.state(tn), tn])
+    states[:, 0], states[:, -1] = np.r_[arc.state(t_a), t_a], np.r_[arc.state(t_b), t_b]
+    return states, s[-1]  # omega [1/s] x t [s]: the same dimensionless length as in scaled units
+
+
+def _coast(model, t0, y0, t1, events=("perilune", "perigee", "entry", "impact_earth", "impact_moon"),
+           entry_radius=None, terminal=()):
+    return propagate(model, t0, y0, t1, events=events, entry_radius=entry_radius, terminal=terminal,
+                     rtol=GUESS_RTOL, atol=1e-9)
+
+
+def _return_momentum(model, t_peri, y_peri):
+    """Geocentric angular momentum (km^2/s) one day after perilune.
+
+    The osculating perigee radius is about ``h^2 / (2 mu)`` on a near-parabolic return, but as a
+    function of the burn it has a flat minimum at ``h = 0`` (a path through Earth's centre) where
+    Newton steps fail; ``|h|`` grows linearly away from it, so it is the quantity targeted.
+    """
+    y = _coast(model, t_peri, y_peri, t_peri + 86400.0, events=()).y[:, -1]
+    return float(np.linalg.norm(np.cross(y[:3], y[3:])))
+
+
+def _target_radius(problem, model):
+    ret = problem.arrival
+    if ret.target == "perigee":
+        return model.earth.radius + 0.5 * sum(ret.perigee_alt_km)
+    gamma = math.radians(0.5 * sum(ret.flight_path_deg))
+    return ret.entry_radius_km * math.cos(gamma) ** 2  # near-parabolic arrival
+
+
+def _first_perilune(arc, after):
+    return next((e for e in arc.events if e.name == "perilune" and e.t > after), None)
+
+
+def linear_targeting(problem, model, t_burn, y_burn, t_end, iters=10):
+    """Least-norm Δv at ``t_burn`` that gives a perilune in range and the target return perigee.
+
+    Returns the Δv (km/s, shape (3,)).  Raises SolveError if the path never passes the Moon.
+    """
+    lo, hi = problem.lunar.altitude_km
+    h_target = math.sqrt(2.0 * model.gm_earth * _target_radius(problem, model))
+
+    def measure(dv):
+        y = y_burn.copy()
+        y[3:] += dv
+        arc = _coast(model, t_burn, y, t_end, events=("perilune",), terminal=("perilune",))
+        peri = _first_perilune(arc, t_burn)
+        if peri is None:
+            return None
+        alt = np.linalg.norm(peri.y[:3] - model.moon_position(peri.t)) - model.moon.radius
+        return np.array([alt, _return_momentum(model, peri.t, peri.y)])
+
+    weight = np.array([1.0, h_target / 1000.0])  # 1 km of perilune ~ 0.1 % of the momentum
+    dv = np.zeros(3)
+    m = measure(dv)
+    if m is None:
+        raise SolveError("the coast never passes the Moon, so no guess can be made from it; "
+                         "start closer to the lunar encounter or give a warm start")
+    span = hi - lo
+    for _ in range(iters):
+        goal = np.array([np.clip(m[0], lo + 0.2 * span if span < 2000 else lo + 50.0,
+                                 hi - 0.2 * span if span < 2000 else lo + 0.5 * min(span, 2000.0)),
+                         h_target])
+        err = goal - m
+        if abs(err[0]) < 1.0 and abs(err[1]) < 1e-4 * h_target:
+            break
+        jac = np.empty((2, 3))
+        h = 1e-5
+        for k in range(3):
+            dk = dv.copy()
+            dk[k] += h
+            mk = measure(dk)
+            if mk is None:
+                raise SolveError("linear targeting left the lunar encounter")
+            jac[:, k] = (mk - m) / h
+        step = np.linalg.lstsq(jac, err, rcond=None)[0]
+        for scale in (1.0, 0.5, 0.25, 0.1):
+            trial = measure(dv + scale * step)
+            if trial is not None and np.abs((goal - trial) / weight).max() < np.abs(err / weight).max():
+                dv, m = dv + scale * step, trial
+                break
+        else:
+            break
+    return dv
+
+
+def initial_guess(problem, model, tr: Transcription):
+    """Node states per phase, burn vectors and phase lengths for ``tr`` from targeted coasts."""
+    st = problem.start
+    t_end = problem.latest_epoch()
+    t, y = st.epoch, np.asarray(st.state, dtype=float)
+    burns = []
+    for j, b in enumerate(problem.burns):
+        lo, hi = b.window
+        tb = max(lo, t) + 0.1 * (hi - max(lo, t)) if hi > max(lo, t) else max(lo, t)
+        burns.append([tb, np.zeros(3)])
+    outbound = [j for j, b in enumerate(problem.burns) if b.leg == "outbound"]
+    if outbound and problem.burns[outbound[0]].direction == "free":
+        j = outbound[0]
+        tb = burns[j][0]
+        yb = _coast(model, t, y, tb, events=()).y[:, -1] if tb > t else y
+        burns[j][1] = linear_targeting(problem, model, tb, yb, t_end)
+    # propagate the guessed path and cut it into phases
+    arcs, cuts, tt, yy = [], [t], t, y.copy()
+    for j in outbound:
+        tb, dv = burns[j]
+        if tb > tt:
+            arcs.append(_coast(model, tt, yy, tb, events=()))
+            yy = arcs[-1].y[:, -1].copy()
+        else:
+            arcs.append(None)
+        yy[3:] += dv
+        tt = tb
+        cuts.append(tb)
+    arc = _coast(model, tt, yy, t_end, entry_radius=problem.arrival.entry_radius_km)
+    peri = _first_perilune(arc, tt)
+    if peri is None:
+        raise SolveError("the guessed path has no perilune")
+    cuts.append(peri.t)
+    arrival = next((e for e in arc.events if e.t > peri.t and e.name == "entry"), None)
+    if arrival is None or problem.arrival.target == "perigee":
+        arrival = next((e for e in arc.events if e.t > peri.t and e.name == "perigee"
+                        and np.linalg.norm(e.y[:3]) < 100000.0), None)
+    if arrival is None:
+        arrival_t = min(peri.t + 3.0 * 86400.0, arc.t[-1])
+    else:
+        arrival_t = arrival.t
+    returns = [j for j, b in enumerate(problem.burns) if b.leg == "return"]
+    for j in returns:  # return-leg burns: guessed zero, spread over the return coast
+        burns[j][0] = float(np.clip(peri.t + 0.3 * (arrival_t - peri.t), *problem.burns[j].window))
+        cuts.append(burns[j][0])
+    cuts.append(arrival_t)
+    arc_of_phase = [arcs[p.index] if p.index < len(outbound) else arc for p in tr.phases]
+    states, slens = [], []
+    for p, a_arc in zip(tr.phases, arc_of_phase):
+        a, b = cuts[p.index], cuts[p.index + 1]
+        if b <= a:  # a burn at the very start: an empty coast
+            z = np.r_[a_arc.state(a) if a_arc is not None else y, a]
+            states.append(np.repeat(z[:, None], tr.segments + 1, axis=1))
+            slens.append(0.0)
+            continue
+        zs, slen = sample_phase(model, a_arc, a, b, tr.segments)
+        states.append(zs)
+        slens.append(slen)
+    return states, [dv for _, dv in burns], slens
+
+
+# -- solve loop -----------------------------------------------------------------------------------
+def _solve_nlp(tr: Transcription, x0, lam=None, extra=None):
+    opts = dict(IPOPT_OPTIONS)
+    opts.update(extra or {})
+    if lam is not None:
+        opts.update(WARM_OPTIONS)
+    solver = ca.nlpsol("slingback", "ipopt", tr.nlp, opts)
+    args = dict(x0=x0, lbx=tr.lbx, ubx=tr.ubx, lbg=tr.lbg, ubg=tr.ubg)
+    if lam is not None:
+        args.update(lam_x0=lam[0], lam_g0=lam[1])
+    t0 = time.perf_counter()
+    sol = solver(**args)
+    wall = time.perf_counter() - t0
+    st = solver.stats()
+    timing = {k[7:]: round(v, 4) for k, v in st.items() if k.startswith("t_wall_nlp_")}
+    return sol, {"timing_s": timing, "status": st["return_status"], "success": bool(st["success"]), "iterations": int(st["iter_count"]),
+                 "wall_s": wall, "objective": float(sol["f"])}
+
+
+def _violations(tr: Transcription, x, g) -> list[str]:
+    """Names of the constraint families most violated at ``x`` (for infeasibility reports)."""
+    g = np.asarray(g).ravel()
+    viol = np.maximum(tr.lbg - g, 0.0) + np.maximum(g - tr.ubg, 0.0)
+    worst = []
+    for name, sl in tr.v.gindex.items():
+        if sl.stop > sl.start and viol[sl].max() > 1e-6:
+            worst.append((viol[sl].max(), name))
+    return [f"{name} (scaled violation {val:.2e})" for val, name in sorted(worst, reverse=True)[:4]]
+
+
+def _segment_errors(tr: Transcription, model, unpacked) -> list[float]:
+    """Largest local disagreement (km) per coast between the NLP nodes and the propagator."""
+    errs = []
+    for zs in unpacked["phases"]:
+        worst = 0.0
+        for k in range(zs.shape[1] - 1):
+            if zs[6, k + 1] - zs[6, k] <= 1e-6:
+                continue
+            arc = propagate(model, zs[6, k], zs[:6, k], zs[6, k + 1])
+            worst = max(worst, float(np.linalg.norm(arc.y[:3, -1] - zs[:3, k + 1])))
+        errs.append(worst)
+    return errs
+
+
+def _claimed_events(tr, model, unpacked):
+    zp = unpacked["phases"][tr.perilune_phase][:, -1]
+    za = unpacked["phases"][-1][:, -1]
+    name = "entry" if tr.problem.arrival.target == "entry" else "perigee"
+    return [perilune_record(zp[6], zp[:6], model), arrival_record(name, za[6], za[:6], model)]
+
+
+def _plan(problem, model, tr, unpacked, status, reason, verification, solver_log, x, lam):
+    burns = [make_burn(t, dv, pre) for t, dv, pre in unpacked["burns"]]
+    nodes = np.hstack([zs if i == 0 else zs[:, 1:] for i, zs in enumerate(unpacked["phases"])])
+    return Plan(
+        name=problem.name, status=status, reason=reason, model=model.describe(),
+        start_epoch=problem.start_epoch, start_state=tuple(problem.start.state), burns=burns,
+        events=_claimed_events(tr, model, unpacked), trajectory_t=nodes[6].copy(), trajectory_y=nodes[:6].T.copy(),
+        verification=verification,
+        solver={**solver_log[-1], "software": f"slingback {__version__}, CasADi {ca.__version__}, IPOPT",
+                "mesh": {"segments": tr.segments, "steps": tr.steps}, "attempts": solver_log},
+        problem=problem_dict(problem),
+        warm={"x": list(map(float, x)), "lam_x": list(map(float, lam[0])), "lam_g": list(map(float, lam[1])),
+              "segments": tr.segments, "steps": tr.steps},
+    )
+
+
+def problem_dict(problem):
+    try:
+        from .problem_file import problem_to_dict
+    except ImportError:  # the file layer is optional for library use
+        return problem.to_dict()
+    return problem_to_dict(problem)
+
+
+def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=None,
+          ipopt_options: dict | None = None) -> Plan:
+    """Minimum-Δv (or other objective) free return for ``problem``, verified independently.
+
+    Parameters
+    ----------
+    problem : Problem
+    warm : Plan, optional
+        A previous plan of a problem with the same layout; its variables start the NLP.
+    progress : callable(str), optional
+        Receives one line per stage.
+    model : ForceModel, optional
+        Prebuilt model (must cover the problem's span); built from ``problem.model`` otherwise.
+    ipopt_options : dict, optional
+        Extra CasADi/IPOPT options (e.g. ``{"ipopt.print_level": 5}`` to watch the iterations).
+
+    Returns
+    -------
+    Plan
+        ``status`` is ``"verified"``, ``"unverified"``, ``"infeasible"`` or ``"failed"``.
+    """
+    say = progress or (lambda msg: None)
+    t_start = time.perf_counter()
+    if model is None:
+        model = build_model(problem.model, problem.start_epoch, problem.latest_epoch())
+    steps = [problem.mesh.steps] * (len(problem.burns) + 2)
+    lam = None
+    if warm is not None and warm.warm.get("x") and warm.warm.get("segments") == problem.mesh.segments \
+            and len(warm.warm.get("steps", [])) == len(steps):
+        steps = list(warm.warm["steps"])
+        tr = Transcription(problem, model, steps, problem.mesh.segments)
+        x0 = np.asarray(warm.warm["x"], dtype=float)
+        if x0.size != tr.x0.size:
+            raise SolveError("the warm-start plan does not match this problem's layout")
+        lam = (np.asarray(warm.warm["lam_x"]), np.asarray(warm.warm["lam_g"]))
+        say("warm start from the given plan")
+    else:
+        tr = Transcription(problem, model, steps, problem.mesh.segments)
+        say("initial guess: targeted coast")
+        states, dvs, slens = initial_guess(problem, model, tr)
+        x0 = tr.guess_vector(states, dvs, slens)
+    log = []
+    for attempt in range(problem.mesh.max_refinements + 1):
+        say(f"NLP: {tr.v.n} variables, {tr.v.ng} constraints, steps per coast {tr.steps}")
+        sol, rec = _solve_nlp(tr, x0, lam, ipopt_options)
+        rec["build_and_solve_s"] = time.perf_counter() - t_start
+        log.append(rec)
+        x = np.asarray(sol["x"]).ravel()
+        lam = (np.asarray(sol["lam_x"]).ravel(), np.asarray(sol["lam_g"]).ravel())
+        unpacked = tr.unpack(x)
+        say(f"IPOPT: {rec['status']} after {rec['iterations']} iterations ({rec['wall_s']:.2f} s)")
+        if not rec["success"]:
+            why = _violations(tr, x, sol["g"])
+            status = "infeasible" if "Infeasible" in rec["status"] else "failed"
+            reason = f"IPOPT stopped with {rec['status']}"
+            if why:
+                reason += "; largest constraint violations at the last iterate: " + ", ".join(why)
+            return _plan(problem, model, tr, unpacked, status, reason, None, log, x, lam)
+        claimed = _claimed_events(tr, model, unpacked)
+        burns = [make_burn(t, dv, pre) for t, dv, pre in unpacked["burns"]]
+        ver = verify(model, problem, problem.start_epoch, np.asarray(problem.start.state), burns, claimed,
+                     claimed[-1].epoch + 3600.0)
+        log[-1]["verify_s"] = time.perf_counter() - t_start - rec["build_and_solve_s"]
+        if ver.passed:
+            say(f"verified: total Δv {sum(b.dv_mps for b in burns):.3f} m/s")
+            log[-1]["end_to_end_s"] = time.perf_counter() - t_start
+            return _plan(problem, model, tr, unpacked, "verified", "", ver, log, x, lam)
+        say("verification failed: " + "; ".join(ver.violations))
+        if attempt == problem.mesh.max_refinements:
+            break
+        errs = _segment_errors(tr, model, unpacked)
+        new_steps = [m * 2 if e > SEGMENT_TOL_KM else m for m, e in zip(tr.steps, errs)]
+        if new_steps == tr.steps:
+            new_steps = [m * 2 for m in tr.steps]
+        say(f"refining coasts (segment disagreement {', '.join(f'{e:.2g}' for e in errs)} km)")
+        tr = Transcription(problem, model, new_steps, problem.mesh.segments)
+        x0 = x
+    reason = "the re-propagated path disagrees with the optimiser: " + "; ".join(ver.violations)
+    return _plan(problem, model, tr, unpacked, "unverified", reason, ver, log, x, lam)

@@ -1,0 +1,392 @@
+"""The multiple-shooting NLP of a free-return design, built with CasADi.
+
+Reading order (the order the NLP is built in :meth:`Transcription.__init__`):
+
+1. **Phases.** The path is cut at every burn, at the perilune and at the arrival: start ->
+   (outbound burns) -> perilune -> (return burns) -> arrival.  Each phase between two cuts is a
+   coast.
+2. **Regularised time.** A coast is integrated in a Sundman-type variable ``s`` with
+   ``dt/ds = 1 / omega``, ``omega^2 = mu_E / r_E^3 + mu_M / r_M^3`` (the local dynamical
+   frequency of Earth and Moon).  Equal steps in ``s`` are equal fractions of the local orbital
+   time scale, so the steps shrink by themselves near perigee and perilune.  The epoch ``t`` is the
+   seventh state and comes out of the integration, so burn, perilune and arrival epochs are
+   ordinary node values.
+3. **Segments.** Each phase has ``N`` segments of equal ``s``-length ``S_p / N`` (``S_p`` a
+   variable); a segment is ``M`` fixed steps of an explicit 8th-order Runge-Kutta scheme (the
+   12-stage 8th-order weights of Dormand & Prince's DOP853).  Nodes are variables; defects tie
+   them together (multiple shooting).
+4. **Burns.** A free burn is a vector ``dv`` with a slack ``sigma >= 0`` and the cone
+   ``sigma^2 >= |dv|^2``; the objective sums the slacks, so it is smooth at the optimum even when a
+   burn is zero.  A fixed-direction burn is ``+-sigma`` along the pre-burn velocity.
+5. **Events.** The perilune is the last node of the outbound coast: radial velocity relative to the
+   Moon zero and distance inside the altitude range.  The arrival is the last node: geocentric
+   radius at the entry interface with the flight-path angle in its window (or radial velocity zero
+   at a perigee in its altitude range).
+6. **Bounds.** Burn and arrival epochs are bounds on node epochs; no node comes closer to Earth or
+   Moon than the minimum altitude.
+
+Everything inside is in scaled units: length ``LU`` (384400 km), time ``TU`` (so that
+``GM_E + GM_M = 1``), epochs measured from the start epoch.  Burn and arrival windows are bounds,
+so one built transcription can be re-solved with other windows (trade studies) without rebuilding.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import casadi as ca
+import numpy as np
+from scipy.integrate._ivp import dop853_coefficients as _dop853
+
+from .constants import EARTH_MOON_DISTANCE, GM_EARTH, GM_MOON
+
+# 12-stage, 8th-order explicit Runge-Kutta weights (Dormand & Prince; Hairer, Norsett & Wanner,
+# Solving ODEs I, 2nd ed., section II.10), as scipy ships them.
+_RK_A = np.asarray(_dop853.A[:12, :12])
+_RK_B = np.asarray(_dop853.B)
+
+DAY = 86400.0
+#: How segments of a coast are evaluated: CasADi map over threads (two cores on the reference machine).
+MAP_MODE, MAP_THREADS = "thread", 2
+
+
+@dataclass(frozen=True)
+class Scaling:
+    """Scaled units of the NLP: km = LU * length, s = TU * time, epoch = t_ref + TU * tau."""
+
+    lu: float
+    tu: float
+    t_ref: float
+
+    @property
+    def vu(self) -> float:
+        return self.lu / self.tu
+
+    @classmethod
+    def earth_moon(cls, t_ref: float) -> "Scaling":
+        lu = EARTH_MOON_DISTANCE
+        return cls(lu, math.sqrt(lu**3 / (GM_EARTH + GM_MOON)), float(t_ref))
+
+
+@dataclass(frozen=True)
+class Phase:
+    """A coast between two cuts; ``end`` is ``"burn"``, ``"perilune"`` or ``"arrival"``."""
+
+    index: int
+    end: str
+    burn: int | None  # index of the burn at the end of this phase, when end == "burn"
+
+
+def phase_layout(problem) -> list[Phase]:
+    """The coasts of ``problem``, in time order."""
+    ends = [("burn", j) for j, b in enumerate(problem.burns) if b.leg == "outbound"]
+    ends.append(("perilune", None))
+    ends += [("burn", j) for j, b in enumerate(problem.burns) if b.leg == "return"]
+    ends.append(("arrival", None))
+    return [Phase(i, e, j) for i, (e, j) in enumerate(ends)]
+
+
+class _Vars:
+    """Collects decision variables with bounds and guesses, and constraints with limits."""
+
+    def __init__(self):
+        self.x, self.lbx, self.ubx, self.x0 = [], [], [], []
+        self.g, self.lbg, self.ubg = [], [], []
+        self.index = {}  # name -> slice into x
+        self.pos = {}  # name -> position in the lists (bounds of one variable block)
+        self.n = 0
+        self.gindex = {}
+        self.ng = 0
+
+    def var(self, name, shape, lb=-np.inf, ub=np.inf, guess=0.0):
+        sym = ca.MX.sym(name, *shape)
+        size = shape[0] * shape[1]
+        self.x.append(ca.vec(sym))
+        for store, val in ((self.lbx, lb), (self.ubx, ub), (self.x0, guess)):
+            store.append(np.broadcast_to(np.asarray(val, dtype=float), shape).ravel(order="F").copy())
+        self.index[name] = slice(self.n, self.n + size)
+        self.pos[name] = len(self.x) - 1
+        self.n += size
+        return sym
+
+    def con(self, name, expr, lo, hi):
+        expr = ca.vec(expr)
+        size = expr.numel()
+        self.g.append(expr)
+        self.lbg.append(np.broadcast_to(np.asarray(lo, dtype=float), (size,)).copy())
+        self.ubg.append(np.broadcast_to(np.asarray(hi, dtype=float), (size,)).copy())
+        self.gindex[name] = slice(self.ng, self.ng + size)
+        self.ng += size
+
+
+class Transcription:
+    """The NLP of one problem on one mesh.
+
+    Parameters
+    ----------
+    problem : Problem
+    model : ForceModel
+        Earth-centred model (km, s, TDB seconds past J2000) with a CasADi side.
+    steps : sequence of int
+        RK8 steps per segment, one entry per phase (refined per phase by the solve loop).
+    segments : int
+        Segments per phase.
+    """
+
+    def __init__(self, problem, model, steps, segments):
+        self.problem, self.model = problem, model
+        self.phases = phase_layout(problem)
+        self.steps = [int(m) for m in steps]
+        self.segments = int(segments)
+        self.sc = Scaling.earth_moon(problem.start_epoch)
+        self._body_functions()
+        v = self.v = _Vars()
+        self._add_start(v)
+        self._add_burns(v)
+        self._add_phases(v)
+        self._link_phases(v)
+        self._add_perilune(v)
+        self._add_arrival(v)
+        self._add_clearance(v)
+        self._add_spacing(v)
+        self._set_objective(v)
+        self.nlp = {"x": ca.vertcat(*v.x), "f": self.f, "g": ca.vertcat(*v.g)}
+        self.lbx, self.ubx = np.concatenate(v.lbx), np.concatenate(v.ubx)
+        self.x0 = np.concatenate(v.x0)
+        self.lbg, self.ubg = np.concatenate(v.lbg), np.concatenate(v.ubg)
+
+    # -- dynamics ------------------------------------------------------------------------------
+    def _body_functions(self):
+        """Scaled Moon position/velocity, right-hand side in ``s``, and one RK8 step."""
+        sc, model = self.sc, self.model
+        tau = ca.SX.sym("tau")
+        t_phys = sc.t_ref + sc.tu * tau
+        rm = model.moon_position_casadi(t_phys) / sc.lu
+        vm = ca.jacobian(rm, tau)  # d(rm)/d(tau) is already the scaled velocity
+        self.moon_fn = ca.Function("moon", [tau], [rm, vm])
+
+        z = ca.SX.sym("z", 7)
+        r, vel, tz = z[0:3], z[3:6], z[6]
+        t_phys = sc.t_ref + sc.tu * tz
+        acc = model.acceleration_casadi(t_phys, r * sc.lu, vel * sc.vu) * (sc.tu**2 / sc.lu)
+        mu_e = model.gm_earth * sc.tu**2 / sc.lu**3
+        mu_m = model.gm_moon * sc.tu**2 / sc.lu**3
+        dm = r - model.moon_position_casadi(t_phys) / sc.lu
+        omega2 = mu_e / ca.power(ca.sumsqr(r), 1.5) + mu_m / ca.power(ca.sumsqr(dm), 1.5)
+        dtds = 1.0 / ca.sqrt(omega2)
+        self.dtds_fn = ca.Function("dtds", [z], [dtds])
+        rhs = ca.Function("rhs", [z], [ca.cse(ca.vertcat(vel * dtds, acc * dtds, dtds))])
+
+        h = ca.SX.sym("h")
+        k = []
+        for i in range(12):
+            zi = z
+            for j in range(i):
+                if _RK_A[i, j] != 0.0:
+                    zi = zi + h * _RK_A[i, j] * k[j]
+            k.append(rhs(zi))
+        z_next = z + h * sum(_RK_B[i] * k[i] for i in range(12) if _RK_B[i] != 0.0)
+        self.step_fn = ca.Function("rk8_step", [z, h], [z_next])
+
+    def segment_function(self, steps: int) -> ca.Function:
+        """``M`` RK8 steps of length ``h / M``, expanded to SX."""
+        z = ca.SX.sym("z", 7)
+        h = ca.SX.sym("h")
+        zz = z
+        for _ in range(steps):
+            zz = self.step_fn(zz, h / steps)
+        return ca.Function(f"segment{steps}", [z, h], [ca.cse(ca.Function("s", [z, h], [zz]).expand()(z, h))])
+
+    # -- building blocks -----------------------------------------------------------------------
+    def _add_start(self, v):
+        st = self.problem.start
+        if not hasattr(st, "state"):
+            raise NotImplementedError("a parking-orbit start is not supported by this transcription yet")
+        sc = self.sc
+        y = np.asarray(st.state, dtype=float)
+        self.z_start = np.r_[y[:3] / sc.lu, y[3:] / sc.vu, (st.epoch - sc.t_ref) / sc.tu]
+
+    def _add_burns(self, v):
+        self.dv, self.sigma = [], []
+        vu_mps = self.sc.vu * 1000.0
+        for j, b in enumerate(self.problem.burns):
+            cap = b.max_dv_mps / vu_mps
+            sig = v.var(f"sigma{j}", (1, 1), 0.0, cap, min(cap, 1e-3))
+            self.sigma.append(sig)
+            if b.direction == "free":
+                dv = v.var(f"dv{j}", (3, 1), -cap, cap, 0.0)
+                v.con(f"cone{j}", sig**2 - ca.sumsqr(dv), 0.0, np.inf)
+                self.dv.append(dv)
+            else:
+                self.dv.append(None)  # fixed direction: set once the pre-burn velocity exists
+
+    def _add_phases(self, v):
+        sc, n = self.sc, self.segments
+        self.nodes, self.slen = [], []
+        for p in self.phases:
+            nodes = v.var(f"z{p.index}", (7, n + 1))
+            slen = v.var(f"S{p.index}", (1, 1), 0.0, 40.0, 1.0)
+            seg = self.segment_function(self.steps[p.index]).map(n, MAP_MODE, MAP_THREADS)
+            z_end = seg(nodes[:, :n], ca.repmat(slen / n, 1, n))
+            v.con(f"defects{p.index}", z_end - nodes[:, 1:], 0.0, 0.0)
+            self.nodes.append(nodes)
+            self.slen.append(slen)
+        # epochs stay inside the ephemeris fit
+        t_hi = (self.problem.latest_epoch() - sc.t_ref) / sc.tu
+        for p in self.phases:
+            k = self._block(p)
+            v.lbx[k][6::7] = 0.0
+            v.ubx[k][6::7] = t_hi
+
+    def _block(self, p):
+        """Position of phase ``p``'s node block in the variable lists."""
+        return self.v.pos[f"z{p.index}"]
+
+    def _link_phases(self, v):
+        """First node of each phase: the start state, or the previous end plus the burn."""
+        problem, sc = self.problem, self.sc
+        win_lo, win_hi = [], []
+        for p, nodes in zip(self.phases, self.nodes):
+            if p.index == 0:
+                k = self._block(p)
+                v.lbx[k][:7] = self.z_start
+                v.ubx[k][:7] = self.z_start
+                continue
+            prev = self.phases[p.index - 1]
+            z_prev = self.nodes[prev.index][:, -1]
+            jump = ca.DM.zeros(7)
+            if prev.end == "burn":
+                j = prev.burn
+                if self.dv[j] is None:
+                    sign = 1.0 if problem.burns[j].direction == "along" else -1.0
+                    vel = z_prev[3:6]
+                    self.dv[j] = sign * self.sigma[j] * vel / ca.norm_2(vel)
+                jump = ca.vertcat(ca.DM.zeros(3), self.dv[j], 0)
+                lo, hi = problem.burns[j].window
+                kp = self._block(prev)
+                v.lbx[kp][-1] = max(v.lbx[kp][-1], (lo - sc.t_ref) / sc.tu)
+                v.ubx[kp][-1] = min(v.ubx[kp][-1], (hi - sc.t_ref) / sc.tu)
+            v.con(f"link{p.index}", nodes[:, 0] - (z_prev + jump), 0.0, 0.0)
+
+    def _add_perilune(self, v):
+        model, sc = self.model, self.sc
+        p = next(p for p in self.phases if p.end == "perilune")
+        z = self.nodes[p.index][:, -1]
+        rm, vm = self.moon_fn(z[6])
+        d, w = z[0:3] - rm, z[3:6] - vm
+        lo, hi = self.problem.lunar.altitude_km
+        rho = lambda alt: ((model.moon.radius + alt) / sc.lu) ** 2  # noqa: E731
+        v.con("perilune_radial", ca.dot(d, w) / ca.norm_2(d), 0.0, 0.0)
+        v.con("perilune_altitude", ca.sumsqr(d), rho(lo), rho(hi))
+        self.perilune_phase = p.index
+
+    def _add_arrival(self, v):
+        problem, model, sc = self.problem, self.model, self.sc
+        ret = problem.arrival
+        p = self.phases[-1]
+        z = self.nodes[p.index][:, -1]
+        r, vel = z[0:3], z[3:6]
+        if ret.target == "entry":
+            v.con("entry_radius", ca.norm_2(r), ret.entry_radius_km / sc.lu, ret.entry_radius_km / sc.lu)
+            lo, hi = (math.sin(math.radians(a)) for a in ret.flight_path_deg)
+            v.con("entry_flight_path", ca.dot(r, vel) / (ca.norm_2(r) * ca.norm_2(vel)), lo, hi)
+        else:
+            lo, hi = ((model.earth.radius + a) / sc.lu for a in ret.perigee_alt_km)
+            v.con("perigee_radial", ca.dot(r, vel) / ca.norm_2(r), 0.0, 0.0)
+            v.con("perigee_radius", ca.norm_2(r), lo, hi)
+        if ret.inclination_deg is not None:
+            hv = ca.cross(r, vel)
+            lo, hi = (math.cos(math.radians(a)) for a in ret.inclination_deg)
+            v.con("arrival_inclination", hv[2] / ca.norm_2(hv), hi, lo)
+        k = self._block(p)
+        t_hi = v.ubx[k][-1]
+        t_lo = v.lbx[k][-1]
+        if ret.epoch_window is not None:
+            t_lo = max(t_lo, (ret.epoch_window[0] - sc.t_ref) / sc.tu)
+            t_hi = min(t_hi, (ret.epoch_window[1] - sc.t_ref) / sc.tu)
+        if ret.max_duration_days is not None:
+            t_hi = min(t_hi, ret.max_duration_days * DAY / sc.tu)
+        v.lbx[k][-1], v.ubx[k][-1] = t_lo, t_hi
+        self.arrival_tau = z[6]
+
+    def _add_clearance(self, v):
+        """No node below the minimum altitude over Earth (but the arrival node) or Moon."""
+        model, sc = self.model, self.sc
+        alt = self.problem.min_altitude_km
+        re2 = ((model.earth.radius + alt) / sc.lu) ** 2
+        rm2 = ((model.moon.radius + alt) / sc.lu) ** 2
+        for p, nodes in zip(self.phases, self.nodes):
+            inner = nodes[:, :-1] if p.end == "arrival" else nodes
+            n = inner.shape[1]
+            moon = self.moon_fn.map(n)(inner[6, :])[0]
+            v.con(f"clear_earth{p.index}", ca.sum1(inner[0:3, :] ** 2), re2, np.inf)
+            v.con(f"clear_moon{p.index}", ca.sum1((inner[0:3, :] - moon) ** 2), rm2, np.inf)
+
+    def _add_spacing(self, v):
+        gap = self.problem.min_burn_spacing_s / self.sc.tu
+        epochs = [self.burn_tau(j) for j in range(len(self.problem.burns))]
+        order = sorted(range(len(epochs)), key=lambda j: self._burn_phase(j))
+        for a, b in zip(order, order[1:]):
+            v.con(f"spacing{a}_{b}", epochs[b] - epochs[a], gap, np.inf)
+
+    def _burn_phase(self, j):
+        return next(p.index for p in self.phases if p.burn == j)
+
+    def burn_tau(self, j):
+        return self.nodes[self._burn_phase(j)][6, -1]
+
+    def _set_objective(self, v):
+        obj = self.problem.objective
+        vu_mps = self.sc.vu * 1000.0
+        total = sum(self.sigma) * vu_mps  # m/s
+        duration_days = (self.arrival_tau - self.z_start[6]) * self.sc.tu / DAY
+        if obj.kind == "min-dv":
+            self.f = total / 100.0
+        elif obj.kind == "earliest":
+            v.con("dv_budget", total, 0.0, obj.dv_budget_mps)
+            self.f = duration_days
+        elif obj.kind == "weighted":
+            self.f = (total + obj.mps_per_day * duration_days) / 100.0
+        else:
+            raise ValueError(f"unknown objective {obj.kind!r}")
+        self.total_dv_mps = total
+
+    # -- guesses and results -------------------------------------------------------------------
+    def guess_vector(self, phase_states, burns_dv, slens) -> np.ndarray:
+        """Initial point from physical node states per phase (7 x (N+1): km, km/s, TDB s),
+        burn vectors (km/s) and phase s-lengths."""
+        sc, v = self.sc, self.v
+        x0 = self.x0.copy()
+        scale = np.r_[[sc.lu] * 3, [sc.vu] * 3, sc.tu]
+        for p, zs in zip(self.phases, phase_states):
+            zs = np.array(zs, dtype=float)
+            zs[6] -= sc.t_ref
+            x0[v.index[f"z{p.index}"]] = (zs / scale[:, None]).ravel(order="F")
+            x0[v.index[f"S{p.index}"]] = slens[p.index]
+        for j, dv in enumerate(burns_dv):
+            dv = np.asarray(dv, dtype=float) / sc.vu
+            cap = self.ubx[v.index[f"sigma{j}"]][0]
+            x0[v.index[f"sigma{j}"]] = min(cap, max(np.linalg.norm(dv) * 1.01, 1e-6))
+            if f"dv{j}" in v.index:
+                x0[v.index[f"dv{j}"]] = dv
+        return x0
+
+    def unpack(self, x) -> dict:
+        """Physical quantities from a variable vector."""
+        sc, v = self.sc, self.v
+        x = np.asarray(x, dtype=float).ravel()
+        scale = np.r_[[sc.lu] * 3, [sc.vu] * 3, sc.tu]
+        phases = []
+        for p in self.phases:
+            zs = x[v.index[f"z{p.index}"]].reshape(7, -1, order="F") * scale[:, None]
+            zs[6] += sc.t_ref
+            phases.append(zs)
+        burns = []
+        dv_fn = ca.Function("dv", [self.nlp["x"]], [ca.horzcat(*self.dv)])
+        dvs = np.array(dv_fn(x)) * sc.vu
+        for j in range(len(self.problem.burns)):
+            zb = phases[self._burn_phase(j)][:, -1]
+            burns.append((float(zb[6]), dvs[:, j].copy(), zb[:6].copy()))
+        slens = [float(x[v.index[f"S{p.index}"]][0]) for p in self.phases]
+        return {"phases": phases, "burns": burns, "slens": slens}
