@@ -28,7 +28,8 @@ from .models import build_model
 from .plan import EventRecord, Plan
 from .problem import Problem
 from .propagate import propagate
-from .transcription import Transcription
+from .seed import circumlunar
+from .transcription import Transcription, is_injection
 from .verify import arrival_record, make_burn, perilune_record, verify
 
 GUESS_RTOL = 1e-9
@@ -167,8 +168,87 @@ def linear_targeting(problem, model, t_burn, y_burn, t_end, iters=10):
     return dv
 
 
+def injection_guess(problem, model, tr: Transcription):
+    """Guess for a parking-orbit start: a ballistic circumlunar seed whose departure perigee is at
+    the parking altitude near the middle of the injection window (:mod:`optimizer.seed`)."""
+    st = problem.start
+    t_mid = 0.5 * sum(st.epoch_window)
+    lo, hi = problem.lunar.altitude_km
+    alt = min(0.5 * (lo + hi), lo + 300.0)
+    ret_alt = _target_radius(problem, model) - model.earth.radius
+    t_p, seed = t_mid + 3.0 * 86400.0, None
+    for _ in range(3):  # move the perilune so that the departure falls mid-window
+        try:
+            seed = circumlunar(model, t_p, alt, st.altitude_km, ret_alt, guess=(0.0, 2.5),
+                               departure_inclination_deg=st.inclination_deg)
+        except ValueError as exc:
+            raise SolveError(f"no injection guess: {exc}") from None
+        if abs(seed.departure.t - t_mid) < 600.0:
+            break
+        t_p += t_mid - seed.departure.t
+    t_d, y_d = seed.departure.t, seed.departure.y
+    inc = math.radians(st.inclination_deg)
+    hvec = np.cross(y_d[:3], y_d[3:])
+    raan = math.atan2(hvec[0], -hvec[1])
+    pvec = np.array([math.cos(raan), math.sin(raan), 0.0])
+    qvec = np.array([-math.cos(inc) * math.sin(raan), math.cos(inc) * math.cos(raan), math.sin(inc)])
+    u = math.atan2(y_d[:3] @ qvec, y_d[:3] @ pvec)
+    rp = model.earth.radius + st.altitude_km
+    v_park = math.sqrt(model.gm_earth / rp) * (-math.sin(u) * pvec + math.cos(u) * qvec)
+    if st.raan_window_deg is not None:
+        raan = float(np.clip(raan, *np.radians(st.raan_window_deg)))
+    arc = _coast(model, t_d, y_d, problem.latest_epoch(), entry_radius=problem.arrival.entry_radius_km)
+    burns = [(t_d, y_d[3:] - v_park)]
+    burns += [(float(np.clip(t_d + 0.2 * (seed.perilune_epoch - t_d), *b.window)), np.zeros(3))
+              for b in problem.burns[1:]]
+    start = {"tau_injection": (t_d - tr.sc.t_ref) / tr.sc.tu, "raan": raan, "arg_latitude": u}
+    return _sample_phases(problem, model, tr, [arc] * len(tr.phases), burns, t_d) + (start,)
+
+
+def _sample_phases(problem, model, tr, arcs, burns, t_start):
+    """Cut the guessed path into the transcription's coasts and sample each."""
+    peri = _first_perilune(arcs[-1], burns[0][0] if burns else t_start)
+    if peri is None:
+        raise SolveError("the guessed path has no perilune")
+    arc = arcs[-1]
+    arrival = None
+    if problem.arrival.target == "entry":
+        arrival = next((e for e in arc.events if e.t > peri.t and e.name == "entry"), None)
+    if arrival is None:
+        arrival = next((e for e in arc.events if e.t > peri.t and e.name == "perigee"
+                        and np.linalg.norm(e.y[:3]) < 100000.0), None)
+    arrival_t = arrival.t if arrival is not None else min(peri.t + 3.0 * 86400.0, arc.t[-1])
+    cuts = [t_start]
+    for p in tr.phases:
+        if p.end == "burn":
+            lo, hi = problem.burns[p.burn].window
+            after = peri.t if problem.burns[p.burn].leg == "return" else cuts[-1]
+            before = arrival_t if problem.burns[p.burn].leg == "return" else peri.t
+            t_b = burns[p.burn][0]
+            if not after <= t_b <= before:
+                t_b = float(np.clip(after + 0.3 * (before - after), lo, hi))
+                burns[p.burn] = (t_b, burns[p.burn][1])
+            cuts.append(t_b)
+        else:
+            cuts.append(peri.t if p.end == "perilune" else arrival_t)
+    states, slens = [], []
+    for p, a_arc in zip(tr.phases, arcs):
+        a, b = cuts[p.index], cuts[p.index + 1]
+        if b <= a:  # a burn at the very start: an empty coast
+            z = np.r_[a_arc.state(a), a]
+            states.append(np.repeat(z[:, None], tr.segments + 1, axis=1))
+            slens.append(0.0)
+            continue
+        zs, slen = sample_phase(model, a_arc, a, b, tr.segments)
+        states.append(zs)
+        slens.append(slen)
+    return states, [dv for _, dv in burns], slens
+
+
 def initial_guess(problem, model, tr: Transcription):
-    """Node states per phase, burn vectors and phase lengths for ``tr`` from targeted coasts."""
+    """Node states per phase, burn vectors, phase lengths and start variables for ``tr``."""
+    if is_injection(problem):
+        return injection_guess(problem, model, tr)
     st = problem.start
     t_end = problem.latest_epoch()
     t, y = st.epoch, np.asarray(st.state, dtype=float)
@@ -183,49 +263,17 @@ def initial_guess(problem, model, tr: Transcription):
         tb = burns[j][0]
         yb = _coast(model, t, y, tb, events=()).y[:, -1] if tb > t else y
         burns[j][1] = linear_targeting(problem, model, tb, yb, t_end)
-    # propagate the guessed path and cut it into phases
-    arcs, cuts, tt, yy = [], [t], t, y.copy()
+    # propagate the guessed path: one arc per outbound burn, then the rest
+    arcs, tt, yy = [], t, y.copy()
     for j in outbound:
         tb, dv = burns[j]
-        if tb > tt:
-            arcs.append(_coast(model, tt, yy, tb, events=()))
-            yy = arcs[-1].y[:, -1].copy()
-        else:
-            arcs.append(None)
+        arcs.append(_coast(model, tt, yy, max(tb, tt + 1e-3), events=()))
+        yy = arcs[-1].y[:, -1].copy()
         yy[3:] += dv
-        tt = tb
-        cuts.append(tb)
-    arc = _coast(model, tt, yy, t_end, entry_radius=problem.arrival.entry_radius_km)
-    peri = _first_perilune(arc, tt)
-    if peri is None:
-        raise SolveError("the guessed path has no perilune")
-    cuts.append(peri.t)
-    arrival = next((e for e in arc.events if e.t > peri.t and e.name == "entry"), None)
-    if arrival is None or problem.arrival.target == "perigee":
-        arrival = next((e for e in arc.events if e.t > peri.t and e.name == "perigee"
-                        and np.linalg.norm(e.y[:3]) < 100000.0), None)
-    if arrival is None:
-        arrival_t = min(peri.t + 3.0 * 86400.0, arc.t[-1])
-    else:
-        arrival_t = arrival.t
-    returns = [j for j, b in enumerate(problem.burns) if b.leg == "return"]
-    for j in returns:  # return-leg burns: guessed zero, spread over the return coast
-        burns[j][0] = float(np.clip(peri.t + 0.3 * (arrival_t - peri.t), *problem.burns[j].window))
-        cuts.append(burns[j][0])
-    cuts.append(arrival_t)
-    arc_of_phase = [arcs[p.index] if p.index < len(outbound) else arc for p in tr.phases]
-    states, slens = [], []
-    for p, a_arc in zip(tr.phases, arc_of_phase):
-        a, b = cuts[p.index], cuts[p.index + 1]
-        if b <= a:  # a burn at the very start: an empty coast
-            z = np.r_[a_arc.state(a) if a_arc is not None else y, a]
-            states.append(np.repeat(z[:, None], tr.segments + 1, axis=1))
-            slens.append(0.0)
-            continue
-        zs, slen = sample_phase(model, a_arc, a, b, tr.segments)
-        states.append(zs)
-        slens.append(slen)
-    return states, [dv for _, dv in burns], slens
+        tt = max(tb, tt)
+    rest = _coast(model, tt, yy, t_end, entry_radius=problem.arrival.entry_radius_km)
+    arcs += [rest] * (len(tr.phases) - len(arcs))
+    return _sample_phases(problem, model, tr, arcs, [tuple(b) for b in burns], t) + ({},)
 
 
 # -- solve loop -----------------------------------------------------------------------------------
@@ -284,7 +332,7 @@ def _plan(problem, model, tr, unpacked, status, reason, verification, solver_log
     nodes = np.hstack([zs if i == 0 else zs[:, 1:] for i, zs in enumerate(unpacked["phases"])])
     return Plan(
         name=problem.name, status=status, reason=reason, model=model.describe(),
-        start_epoch=problem.start_epoch, start_state=tuple(problem.start.state), burns=burns,
+        start_epoch=float(unpacked["start"][6]), start_state=tuple(map(float, unpacked["start"][:6])), burns=burns,
         events=_claimed_events(tr, model, unpacked), trajectory_t=nodes[6].copy(), trajectory_y=nodes[:6].T.copy(),
         verification=verification,
         solver={**solver_log[-1], "software": f"slingback {__version__}, CasADi {ca.__version__}, IPOPT",
@@ -301,6 +349,12 @@ def problem_dict(problem):
     except ImportError:  # the file layer is optional for library use
         return problem.to_dict()
     return problem_to_dict(problem)
+
+
+def model_span(problem) -> tuple[float, float]:
+    """Epochs a problem's model must cover (the injection seed looks up to 3 days back)."""
+    back = 3.0 * 86400.0 if is_injection(problem) else 0.0
+    return problem.start_epoch - back, problem.latest_epoch()
 
 
 def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=None,
@@ -327,7 +381,7 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
     say = progress or (lambda msg: None)
     t_start = time.perf_counter()
     if model is None:
-        model = build_model(problem.model, problem.start_epoch, problem.latest_epoch())
+        model = build_model(problem.model, *model_span(problem))
     steps = [problem.mesh.steps] * (len(problem.burns) + 2)
     lam = None
     if warm is not None and warm.warm.get("x") and warm.warm.get("segments") == problem.mesh.segments \
@@ -342,8 +396,8 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
     else:
         tr = Transcription(problem, model, steps, problem.mesh.segments)
         say("initial guess: targeted coast")
-        states, dvs, slens = initial_guess(problem, model, tr)
-        x0 = tr.guess_vector(states, dvs, slens)
+        states, dvs, slens, start = initial_guess(problem, model, tr)
+        x0 = tr.guess_vector(states, dvs, slens, start)
     log = []
     for attempt in range(problem.mesh.max_refinements + 1):
         say(f"NLP: {tr.v.n} variables, {tr.v.ng} constraints, steps per coast {tr.steps}")
@@ -363,8 +417,8 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
             return _plan(problem, model, tr, unpacked, status, reason, None, log, x, lam)
         claimed = _claimed_events(tr, model, unpacked)
         burns = [make_burn(t, dv, pre) for t, dv, pre in unpacked["burns"]]
-        ver = verify(model, problem, problem.start_epoch, np.asarray(problem.start.state), burns, claimed,
-                     claimed[-1].epoch + 3600.0)
+        start = unpacked["start"]
+        ver = verify(model, problem, start[6], start[:6], burns, claimed, claimed[-1].epoch + 3600.0)
         log[-1]["verify_s"] = time.perf_counter() - t_start - rec["build_and_solve_s"]
         if ver.passed:
             say(f"verified: total Δv {sum(b.dv_mps for b in burns):.3f} m/s")

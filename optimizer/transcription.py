@@ -78,9 +78,15 @@ class Phase:
     burn: int | None  # index of the burn at the end of this phase, when end == "burn"
 
 
+def is_injection(problem) -> bool:
+    """True when the path starts in a parking orbit and burn 0 is the injection at the start."""
+    return not hasattr(problem.start, "state")
+
+
 def phase_layout(problem) -> list[Phase]:
-    """The coasts of ``problem``, in time order."""
-    ends = [("burn", j) for j, b in enumerate(problem.burns) if b.leg == "outbound"]
+    """The coasts of ``problem``, in time order (an injection burn is at the start, not a cut)."""
+    first = 1 if is_injection(problem) else 0
+    ends = [("burn", j) for j, b in enumerate(problem.burns) if b.leg == "outbound" and j >= first]
     ends.append(("perilune", None))
     ends += [("burn", j) for j, b in enumerate(problem.burns) if b.leg == "return"]
     ends.append(("arrival", None))
@@ -200,12 +206,26 @@ class Transcription:
 
     # -- building blocks -----------------------------------------------------------------------
     def _add_start(self, v):
-        st = self.problem.start
-        if not hasattr(st, "state"):
-            raise NotImplementedError("a parking-orbit start is not supported by this transcription yet")
-        sc = self.sc
-        y = np.asarray(st.state, dtype=float)
-        self.z_start = np.r_[y[:3] / sc.lu, y[3:] / sc.vu, (st.epoch - sc.t_ref) / sc.tu]
+        """The start: a fixed state, or a point of the parking orbit at a free epoch and node."""
+        st, sc, model = self.problem.start, self.sc, self.model
+        if not is_injection(self.problem):
+            y = np.asarray(st.state, dtype=float)
+            self.z_start = ca.DM(np.r_[y[:3] / sc.lu, y[3:] / sc.vu, (st.epoch - sc.t_ref) / sc.tu])
+            return
+        lo, hi = ((t - sc.t_ref) / sc.tu for t in st.epoch_window)
+        tau = v.var("tau_injection", (1, 1), lo, hi, 0.5 * (lo + hi))
+        raan_lo, raan_hi = (-4 * math.pi, 4 * math.pi) if st.raan_window_deg is None else \
+            (math.radians(a) for a in st.raan_window_deg)
+        raan = v.var("raan", (1, 1), raan_lo, raan_hi, 0.5 * (raan_lo + raan_hi))
+        u = v.var("arg_latitude", (1, 1), -4 * math.pi, 4 * math.pi, 0.0)
+        inc = math.radians(st.inclination_deg)
+        rp = (model.earth.radius + st.altitude_km) / sc.lu
+        vp = math.sqrt(model.gm_earth * sc.tu**2 / sc.lu**3 / rp)
+        pvec = ca.vertcat(ca.cos(raan), ca.sin(raan), 0)
+        qvec = ca.vertcat(-math.cos(inc) * ca.sin(raan), math.cos(inc) * ca.cos(raan), math.sin(inc))
+        r = rp * (ca.cos(u) * pvec + ca.sin(u) * qvec)
+        vel = vp * (-ca.sin(u) * pvec + ca.cos(u) * qvec)
+        self.z_start = ca.vertcat(r, vel, tau)
 
     def _add_burns(self, v):
         self.dv, self.sigma = [], []
@@ -248,25 +268,28 @@ class Transcription:
         problem, sc = self.problem, self.sc
         win_lo, win_hi = [], []
         for p, nodes in zip(self.phases, self.nodes):
-            if p.index == 0:
+            if p.index == 0 and not is_injection(problem):
                 k = self._block(p)
-                v.lbx[k][:7] = self.z_start
-                v.ubx[k][:7] = self.z_start
+                v.lbx[k][:7] = np.asarray(self.z_start).ravel()
+                v.ubx[k][:7] = np.asarray(self.z_start).ravel()
                 continue
-            prev = self.phases[p.index - 1]
-            z_prev = self.nodes[prev.index][:, -1]
+            if p.index == 0:  # the injection burn, at the start
+                z_prev, j = self.z_start, 0
+            else:
+                prev = self.phases[p.index - 1]
+                z_prev, j = self.nodes[prev.index][:, -1], prev.burn
+                if prev.end == "burn":
+                    lo, hi = problem.burns[j].window
+                    kp = self._block(prev)
+                    v.lbx[kp][-1] = max(v.lbx[kp][-1], (lo - sc.t_ref) / sc.tu)
+                    v.ubx[kp][-1] = min(v.ubx[kp][-1], (hi - sc.t_ref) / sc.tu)
             jump = ca.DM.zeros(7)
-            if prev.end == "burn":
-                j = prev.burn
+            if j is not None:
                 if self.dv[j] is None:
                     sign = 1.0 if problem.burns[j].direction == "along" else -1.0
                     vel = z_prev[3:6]
                     self.dv[j] = sign * self.sigma[j] * vel / ca.norm_2(vel)
                 jump = ca.vertcat(ca.DM.zeros(3), self.dv[j], 0)
-                lo, hi = problem.burns[j].window
-                kp = self._block(prev)
-                v.lbx[kp][-1] = max(v.lbx[kp][-1], (lo - sc.t_ref) / sc.tu)
-                v.ubx[kp][-1] = min(v.ubx[kp][-1], (hi - sc.t_ref) / sc.tu)
             v.con(f"link{p.index}", nodes[:, 0] - (z_prev + jump), 0.0, 0.0)
 
     def _add_perilune(self, v):
@@ -331,10 +354,12 @@ class Transcription:
             v.con(f"spacing{a}_{b}", epochs[b] - epochs[a], gap, np.inf)
 
     def _burn_phase(self, j):
-        return next(p.index for p in self.phases if p.burn == j)
+        """Index of the coast that ends at burn ``j`` (-1: the injection, at the start)."""
+        return next((p.index for p in self.phases if p.burn == j), -1)
 
     def burn_tau(self, j):
-        return self.nodes[self._burn_phase(j)][6, -1]
+        k = self._burn_phase(j)
+        return self.z_start[6] if k < 0 else self.nodes[k][6, -1]
 
     def _set_objective(self, v):
         obj = self.problem.objective
@@ -353,9 +378,9 @@ class Transcription:
         self.total_dv_mps = total
 
     # -- guesses and results -------------------------------------------------------------------
-    def guess_vector(self, phase_states, burns_dv, slens) -> np.ndarray:
+    def guess_vector(self, phase_states, burns_dv, slens, start=None) -> np.ndarray:
         """Initial point from physical node states per phase (7 x (N+1): km, km/s, TDB s),
-        burn vectors (km/s) and phase s-lengths."""
+        burn vectors (km/s), phase s-lengths and (injection) start variables by name."""
         sc, v = self.sc, self.v
         x0 = self.x0.copy()
         scale = np.r_[[sc.lu] * 3, [sc.vu] * 3, sc.tu]
@@ -364,6 +389,8 @@ class Transcription:
             zs[6] -= sc.t_ref
             x0[v.index[f"z{p.index}"]] = (zs / scale[:, None]).ravel(order="F")
             x0[v.index[f"S{p.index}"]] = slens[p.index]
+        for name, val in (start or {}).items():
+            x0[v.index[name]] = val
         for j, dv in enumerate(burns_dv):
             dv = np.asarray(dv, dtype=float) / sc.vu
             cap = self.ubx[v.index[f"sigma{j}"]][0]
@@ -382,11 +409,15 @@ class Transcription:
             zs = x[v.index[f"z{p.index}"]].reshape(7, -1, order="F") * scale[:, None]
             zs[6] += sc.t_ref
             phases.append(zs)
+        fn = ca.Function("dv", [self.nlp["x"]], [ca.horzcat(*self.dv), self.z_start])
+        dvs, z0 = (np.array(a) for a in fn(x))
+        dvs *= sc.vu
+        start = z0.ravel() * scale
+        start[6] += sc.t_ref
         burns = []
-        dv_fn = ca.Function("dv", [self.nlp["x"]], [ca.horzcat(*self.dv)])
-        dvs = np.array(dv_fn(x)) * sc.vu
         for j in range(len(self.problem.burns)):
-            zb = phases[self._burn_phase(j)][:, -1]
+            k = self._burn_phase(j)
+            zb = start if k < 0 else phases[k][:, -1]
             burns.append((float(zb[6]), dvs[:, j].copy(), zb[:6].copy()))
         slens = [float(x[v.index[f"S{p.index}"]][0]) for p in self.phases]
-        return {"phases": phases, "burns": burns, "slens": slens}
+        return {"phases": phases, "burns": burns, "slens": slens, "start": start}
