@@ -1,0 +1,175 @@
+"""Write a run folder: plan.json, problem.toml, CSV tables, CCSDS OEM, figures and report.md.
+
+An OEM is written only for a verified plan (other tools ingest it without reading the report).
+Everything is written into a temporary folder beside the destination and moved into place only
+when complete, so a run folder is either whole or absent.  An existing folder is replaced only
+with ``force=True`` (new folder written, old one moved aside, new one moved in, old one deleted).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import tempfile
+import uuid
+from pathlib import Path
+
+from .. import __version__
+from ..constants import CAUTION
+from ..problem_file import dumps_toml, problem_to_dict
+from ..timescales import format_epoch
+from .figures import FIGURES, write_figures
+from .oem import oem_text
+from .report import report_markdown
+from .sampling import plan_model, sample_plan
+from .tables import burns_frame, nodes_frame, trajectory_frame, write_csv
+
+__all__ = ["write_run", "plan_json", "write_plot_files", "run_summary"]
+
+FILES = {
+    "plan.json": "the plan (slingback-plan format, version 1) with its problem",
+    "problem.toml": "the problem as solved (reusable with `slingback solve`)",
+    "burns.csv": "burns: epoch (TDB), Δv and its ICRF and RTN components in m/s",
+    "trajectory.csv": "independently re-propagated states, Earth-centred ICRF, km and km/s",
+    "nodes.csv": "the optimiser's own nodes (what was compared with the re-propagation)",
+    "trajectory.oem": "CCSDS OEM 2.0 (KVN), one segment per coast arc, ICRF, TDB",
+    "report.md": "this report",
+}
+
+
+def plan_json(plan, problem) -> dict:
+    """The plan's JSON form carrying its problem in table form (what ``slingback check`` reads)."""
+    d = plan.to_dict()
+    d["problem"] = problem_to_dict(problem)
+    return d
+
+
+def run_summary(plan, out_dir=None) -> dict:
+    """A short machine-readable summary of a plan (what ``slingback --json`` prints)."""
+    v = plan.verification
+    return {
+        "software": f"slingback {__version__}", "name": plan.name, "status": plan.status,
+        "verified": plan.verified, "reason": plan.reason, "total_dv_mps": plan.total_dv_mps,
+        "burns": [{"epoch_tdb": format_epoch(b.epoch, 3), "dv_mps": b.dv_mps,
+                   "dv_rtn_mps": [1000.0 * x for x in b.dv_rtn]} for b in plan.burns],
+        "events": [{"name": e.name, "epoch_tdb": format_epoch(e.epoch, 3), "altitude_km": e.altitude_km,
+                    "flight_path_deg": e.flight_path_deg} for e in plan.events],
+        "verification": None if v is None else {"passed": v.passed, "residuals": v.residuals,
+                                                "violations": v.violations},
+        "out": None if out_dir is None else str(out_dir), "caution": CAUTION}
+
+
+def write_run(plan, problem, out_dir, *, force: bool = False, model=None, created=None) -> Path:
+    """Write the complete run folder of a plan.
+
+    Parameters
+    ----------
+    plan : Plan
+        Any status; an unverified or failed plan still gets its diagnostics, marked NOT VERIFIED.
+    problem : Problem
+    out_dir : str or path-like
+        Destination folder (created; its parent too).
+    force : bool
+        Replace an existing ``out_dir``.
+    model : ForceModel, optional
+        Model to re-propagate with (default: built from ``problem.model`` over the plan's span).
+    created : datetime, optional
+        Creation date written into the OEM (default now, UTC).
+
+    Returns
+    -------
+    Path
+        ``out_dir``.
+
+    Raises
+    ------
+    FileExistsError
+        If ``out_dir`` exists and ``force`` is false (nothing is written).
+    """
+    out = Path(out_dir)
+    _refuse_existing(out, force)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
+    try:
+        os.chmod(tmp, 0o755)
+        _write_contents(plan, problem, tmp, model, created)
+        _move_into_place(tmp, out, force)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return out
+
+
+def _refuse_existing(out: Path, force: bool):
+    if out.exists() and not out.is_dir():
+        raise FileExistsError(f"{out} exists and is not a folder")
+    if out.exists() and not force:
+        raise FileExistsError(f"{out} already exists; use --force (force=True) to replace it")
+
+
+def _move_into_place(tmp: Path, out: Path, force: bool):
+    _refuse_existing(out, force)
+    if not out.exists():
+        os.rename(tmp, out)  # fails, rather than merges, if a folder appeared meanwhile
+        return
+    old = out.with_name(f".{out.name}.old-{uuid.uuid4().hex[:8]}")
+    os.rename(out, old)
+    try:
+        os.rename(tmp, out)
+    except BaseException:
+        os.rename(old, out)
+        raise
+    shutil.rmtree(old, ignore_errors=True)
+
+
+def _model_name(plan, problem) -> str:
+    return (plan.model or {}).get("name") or problem.model.kind
+
+
+def write_plot_files(plan, problem, out_dir, *, model=None, sampled=None) -> list[str]:
+    """Re-propagate a plan and draw its figures into ``out_dir``; returns the file names."""
+    model = model or plan_model(plan, problem)
+    if sampled is None:
+        sampled = sample_plan(plan, problem, model)
+    moon = getattr(model, "moon", None)
+    return write_figures(sampled, plan, problem, out_dir, earth_radius_km=model.earth.radius,
+                         moon_radius_km=moon.radius if moon is not None else None,
+                         model_name=_model_name(plan, problem))
+
+
+def _write_contents(plan, problem, folder: Path, model, created):
+    name = _model_name(plan, problem)
+    notes, files, figures = [], ["plan.json", "problem.toml", "burns.csv"], []
+    (folder / "plan.json").write_text(json.dumps(plan_json(plan, problem), indent=1) + "\n")
+    (folder / "problem.toml").write_text(
+        f"# Problem of the slingback {__version__} run {plan.name!r} (status {plan.status}).\n"
+        f"# {CAUTION}\n\n" + dumps_toml(problem_to_dict(problem)))
+    write_csv(burns_frame(plan, problem), folder / "burns.csv", "burns", plan, name)
+    if len(plan.trajectory_t):
+        write_csv(nodes_frame(plan), folder / "nodes.csv", "optimiser nodes", plan, name)
+        files.append("nodes.csv")
+    sampled = None
+    try:
+        model = model or plan_model(plan, problem)
+        sampled = sample_plan(plan, problem, model)
+    except (ValueError, RuntimeError) as exc:
+        if plan.verified:
+            raise
+        notes.append(f"the plan could not be re-propagated for export ({exc}); no trajectory, OEM or figures")
+    if sampled is not None:
+        moon = getattr(model, "moon", None)
+        write_csv(trajectory_frame(sampled, model.earth.radius, moon.radius if moon is not None else None),
+                  folder / "trajectory.csv", "independently re-propagated trajectory", plan, name)
+        files.append("trajectory.csv")
+        if plan.verified:  # an OEM is what other tools ingest: only ever for a verified plan
+            (folder / "trajectory.oem").write_text(oem_text(sampled, plan, problem, model_name=name,
+                                                            created=created))
+            files.append("trajectory.oem")
+        else:
+            notes.append("no trajectory.oem is written for a plan that is not verified")
+        figures = [(f, FIGURES[f]) for f in write_plot_files(plan, problem, folder, model=model, sampled=sampled)]
+    files.append("report.md")
+    text = report_markdown(plan, problem, sampled=sampled, figures=figures,
+                           files=[(f, FILES[f]) for f in files], notes=notes, model_name=name)
+    (folder / "report.md").write_text(text)

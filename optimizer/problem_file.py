@@ -1,0 +1,607 @@
+"""Problem files: our TOML schema, read and checked at the door, and written back.
+
+``load_problem`` reads a file, ``problem_from_dict`` builds a :class:`~optimizer.problem.Problem`
+from the parsed tables, and ``problem_to_dict`` gives the same table form back (so a plan can
+carry its problem and ``problem_from_dict(problem_to_dict(p)) == p``).  Every key, unit and
+default is documented in ``docs/problem-format.md``.
+
+Every mistake raises :class:`ProblemError` whose message names the file, the key and what was
+expected, e.g. ``problems/x.toml: [return].flight_path_deg: expected two numbers between -90
+and 0, got [-7, 5]``.  Unknown keys and sections are rejected (with a suggestion), so a typo can
+never silently fall back to a default.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import re
+import tomllib
+from pathlib import Path
+
+from .constants import ENTRY_INTERFACE_ALT, GM_EARTH, R_EARTH
+from .frames import kepler_to_cartesian
+from .models.factory import MODEL_KINDS
+from .problem import (BurnSpec, LunarPass, Mesh, ModelSpec, Objective, ParkingStart, Problem,
+                      ReturnSpec, StateStart, Tolerances)
+from .timescales import format_epoch, parse_epoch
+
+__all__ = ["ProblemError", "load_problem", "problem_from_dict", "problem_to_dict", "dumps_toml",
+           "describe_problem", "MODEL_DESCRIPTIONS"]
+
+#: One line per model kind, for ``slingback models`` and the docs.
+MODEL_DESCRIPTIONS = {
+    "two-body": "Earth as a point mass only (no Moon: for tests and first guesses).",
+    "earth-moon": "Earth plus a Moon on a circular orbit set in [model.moon], Earth-centred.",
+    "cr3bp": "Circular restricted three-body problem, Earth-Moon rotating frame, non-dimensional.",
+    "ephemeris": "Earth, Moon (and Sun, optional Earth J2) at JPL DE421 positions, Earth-centred.",
+}
+
+SECTIONS = ("scenario", "model", "start", "burn", "lunar", "return", "objective", "tolerances",
+            "mesh", "limits")
+#: The keys each table may hold (checked first, so a typo is reported as a typo).
+KEYS = {
+    "": SECTIONS,
+    "scenario": ("name", "description", "vehicle"),
+    "model": ("kind", "sun", "j2", "continuation", "moon"),
+    "model.moon": ("radius_km", "period_days", "inclination_deg", "raan_deg", "phase_deg", "epoch"),
+    "start": ("kind", "epoch", "position_km", "velocity_kms", "elements", "altitude_km",
+              "inclination_deg", "epoch_window", "raan_window_deg"),
+    "start.elements": ("a_km", "e", "inc_deg", "raan_deg", "argp_deg", "nu_deg"),
+    "burn": ("window", "max_dv_mps", "direction", "leg"),
+    "lunar": ("perilune_altitude_km",),
+    "return": ("target", "entry_altitude_km", "flight_path_deg", "perigee_altitude_km", "epoch_window",
+               "inclination_deg", "max_duration_days"),
+    "objective": ("kind", "dv_budget_mps", "mps_per_day"),
+    "tolerances": ("entry_position_km", "flight_path_deg", "perilune_altitude_km", "perigee_altitude_km"),
+    "mesh": ("segments", "steps", "max_refinements"),
+    "limits": ("min_burn_spacing_hours", "min_altitude_km"),
+}
+#: Epochs the "ephemeris" model can serve (DE421's nominal span, 1900-2050).
+EPHEMERIS_SPAN = (parse_epoch("1900-01-01T00:00:00"), parse_epoch("2050-01-01T00:00:00"))
+_NAME_RE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")
+_REQUIRED = object()
+
+
+class ProblemError(ValueError):
+    """A problem file (or dict) that cannot be used; the message names file, key and expectation."""
+
+
+# ------------------------------------------------------------------------------------------------
+# Reading
+# ------------------------------------------------------------------------------------------------
+def load_problem(path) -> Problem:
+    """Read and validate a problem file.
+
+    Parameters
+    ----------
+    path : str or path-like
+        A TOML file in the format of ``docs/problem-format.md``.
+
+    Returns
+    -------
+    Problem
+
+    Raises
+    ------
+    ProblemError
+        If the file cannot be read, is not valid TOML (the message gives the line), or breaks the
+        schema.
+    """
+    source = str(path)
+    try:
+        text = Path(path).read_bytes().decode("utf-8")
+    except OSError as exc:
+        raise ProblemError(f"{source}: cannot read the file ({exc.strerror or exc})") from None
+    except UnicodeDecodeError:
+        raise ProblemError(f"{source}: not a UTF-8 text file") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        message = str(exc).replace("(at end of document)",
+                                   f"(at the end of the file, line {len(text.splitlines()) or 1})")
+        raise ProblemError(f"{source}: invalid TOML: {message}") from None
+    return problem_from_dict(data, source=source)
+
+
+def problem_from_dict(d: dict, source: str = "<dict>") -> Problem:
+    """Build a :class:`Problem` from the table form of a problem file.
+
+    Parameters
+    ----------
+    d : dict
+        Parsed TOML (or the output of :func:`problem_to_dict`).
+    source : str
+        Name used at the start of error messages (the file path).
+
+    Raises
+    ------
+    ProblemError
+    """
+    if not isinstance(d, dict):
+        raise ProblemError(f"{source}: expected a table of sections, got {_show(d)}")
+    top = _Table(source, "", "", d)
+    scenario = _Table.sub(top, "scenario", required=True)
+    name = scenario.string("name", pattern=_NAME_RE,
+                           what="a name of letters, digits, '.', '_' or '-' (at most 64 characters)")
+    description = scenario.string("description", "")
+    vehicle = scenario.string("vehicle", "", pattern=re.compile(r"[ -~]{0,64}"),
+                              what="printable ASCII text of at most 64 characters")
+    scenario.done()
+
+    model = _model(_Table.sub(top, "model"))
+    start = _start(_Table.sub(top, "start", required=True))
+    burns = _burns(top, start)
+    lunar = _Table.sub(top, "lunar")
+    lunar_pass = LunarPass(lunar.pair("perilune_altitude_km", LunarPass().altitude_km, lo=0.0, hi=1e6))
+    lunar.done()
+    arrival = _arrival(_Table.sub(top, "return"), start, burns)
+    objective = _objective(_Table.sub(top, "objective"))
+    tol = _Table.sub(top, "tolerances")
+    defaults = Tolerances()
+    tolerances = Tolerances(**{k: tol.number(k, getattr(defaults, k), lo=0.0, lo_open=True)
+                               for k in ("entry_position_km", "flight_path_deg",
+                                         "perilune_altitude_km", "perigee_altitude_km")})
+    tol.done()
+    mesh_t = _Table.sub(top, "mesh")
+    mesh = Mesh(segments=mesh_t.integer("segments", Mesh().segments, 1, 10000),
+                steps=mesh_t.integer("steps", Mesh().steps, 1, 1000),
+                max_refinements=mesh_t.integer("max_refinements", Mesh().max_refinements, 0, 20))
+    mesh_t.done()
+    limits = _Table.sub(top, "limits")
+    spacing_h = limits.number("min_burn_spacing_hours", 0.0, lo=0.0, hi=1000.0)
+    min_alt = limits.number("min_altitude_km", Problem.__dataclass_fields__["min_altitude_km"].default,
+                            lo=0.0, hi=1e5)
+    limits.done()
+    problem = Problem(name=name, start=start, burns=burns, lunar=lunar_pass, arrival=arrival,
+                      objective=objective, model=model, min_burn_spacing_s=spacing_h * 3600.0,
+                      min_altitude_km=min_alt, tolerances=tolerances, mesh=mesh,
+                      description=description, vehicle=vehicle)
+    if "ephemeris" in (model.kind, *model.continuation):
+        _check_ephemeris_span(problem, source)
+    return problem
+
+
+def _check_ephemeris_span(problem: Problem, source: str):
+    """The DE421 ephemeris covers 1900-2050 (with margin for the fit and the injection seed)."""
+    lo, hi = EPHEMERIS_SPAN
+    key = "[start].epoch" if isinstance(problem.start, StateStart) else "[start].epoch_window"
+    if problem.start_epoch - 4 * 86400.0 < lo:
+        raise ProblemError(f"{source}: {key}: expected an epoch after {format_epoch(lo + 4 * 86400.0, 0)} TDB "
+                           "(the ephemeris model's DE421 span)")
+    if problem.latest_epoch() + 86400.0 > hi:
+        raise ProblemError(f"{source}: [model].kind: the problem runs to {format_epoch(problem.latest_epoch(), 0)} "
+                           f"TDB, past the DE421 span of the ephemeris model (ends {format_epoch(hi, 0)} TDB)")
+
+
+def _model(t: "_Table") -> ModelSpec:
+    default = ModelSpec()
+    kind = t.choice("kind", MODEL_KINDS, default.kind)
+    sun = t.boolean("sun", default.sun)
+    j2 = t.boolean("j2", default.j2)
+    chain = t.get("continuation", [])
+    if not (isinstance(chain, list) and all(c in MODEL_KINDS and c != kind for c in chain)
+            and len(set(chain)) == len(chain)):
+        raise t.error("continuation", f"a list of distinct model kinds other than {kind!r} "
+                                      f"(from {', '.join(MODEL_KINDS)})", chain)
+    moon = {}
+    if "moon" in t.data:
+        m = _Table.sub(t, "moon")
+        for key, lo, hi, lo_open in (("radius_km", 0.0, 1e7, True), ("period_days", 0.0, 1e4, True),
+                                     ("inclination_deg", 0.0, 180.0, False),
+                                     ("raan_deg", -360.0, 360.0, False), ("phase_deg", -360.0, 360.0, False)):
+            value = m.number(key, None, lo=lo, hi=hi, lo_open=lo_open)
+            if value is not None:
+                moon[key] = value
+        if "epoch" in m.data:
+            moon["epoch"] = m.epoch("epoch")
+        m.done()
+    t.done()
+    return ModelSpec(kind=kind, sun=sun, j2=j2, moon=moon, continuation=tuple(chain))
+
+
+def _start(t: "_Table") -> StateStart | ParkingStart:
+    kind = t.choice("kind", ("state", "parking"))
+    if kind == "parking":
+        start = ParkingStart(altitude_km=t.number("altitude_km", lo=0.0, hi=1e5, lo_open=True),
+                             inclination_deg=t.number("inclination_deg", lo=0.0, hi=180.0),
+                             epoch_window=t.epoch_pair("epoch_window"),
+                             raan_window_deg=t.pair("raan_window_deg", None, lo=-360.0, hi=360.0))
+        t.done(' with kind = "parking"')
+        return start
+    epoch = t.epoch("epoch")
+    if "elements" in t.data:
+        if "position_km" in t.data or "velocity_kms" in t.data:
+            raise ProblemError(f"{t.where('elements')}: give either [start.elements] or position_km and "
+                               "velocity_kms, not both")
+        el = _Table.sub(t, "elements")
+        a, e = el.number("a_km"), el.number("e", lo=0.0, hi=100.0)
+        if not ((a > 0 and e < 1) or (a < 0 and e > 1)):
+            raise el.error("a_km", "a > 0 with e < 1 (ellipse) or a < 0 with e > 1 (hyperbola)",
+                           f"a_km = {a}, e = {e}")
+        angles = [math.radians(el.number(k, lo=lo, hi=hi)) for k, lo, hi in (
+            ("inc_deg", 0.0, 180.0), ("raan_deg", -360.0, 360.0), ("argp_deg", -360.0, 360.0),
+            ("nu_deg", -360.0, 360.0))]
+        el.done()
+        try:
+            r, v = kepler_to_cartesian(a, e, *angles, GM_EARTH)
+        except ValueError:
+            raise el.error("nu_deg", "a true anomaly between the asymptotes of the hyperbola",
+                           math.degrees(angles[3])) from None
+        state = tuple(float(x) for x in (*r, *v))
+    else:
+        r = t.vector("position_km")
+        v = t.vector("velocity_kms")
+        state = r + v
+    if not R_EARTH < math.dist(state[:3], (0, 0, 0)) < 2e6:
+        raise t.error("position_km", f"a geocentric position between {R_EARTH} km (Earth's radius) "
+                                     "and 2,000,000 km", list(state[:3]))
+    if not math.dist(state[3:], (0, 0, 0)) < 50.0:
+        raise t.error("velocity_kms", "a speed below 50 km/s", list(state[3:]))
+    t.done(' with kind = "state"' + (" and [start.elements]" if "elements" in t.data else ""))
+    return StateStart(epoch=epoch, state=state)
+
+
+def _burns(top: "_Table", start) -> tuple[BurnSpec, ...]:
+    raw = top.get("burn", _REQUIRED)
+    if not (isinstance(raw, list) and raw and all(isinstance(b, dict) for b in raw)):
+        raise top.error("burn", "one or more [[burn]] tables", raw)
+    t0 = start.epoch if isinstance(start, StateStart) else start.epoch_window[0]
+    burns, prev, seen_return = [], None, False
+    for i, b in enumerate(raw, 1):
+        t = _Table(top.source, f"[[burn]] #{i}", "burn", b)
+        window = t.epoch_pair("window")
+        spec = BurnSpec(window=window, max_dv_mps=t.number("max_dv_mps", lo=0.0, hi=1e4, lo_open=True),
+                        direction=t.choice("direction", ("free", "along", "against"), "free"),
+                        leg=t.choice("leg", ("outbound", "return"), "outbound"))
+        t.done()
+        if window[0] < t0:
+            raise t.error("window", f"a window that opens no earlier than the start "
+                                    f"({format_epoch(t0, 0)} TDB)", _epochs(window))
+        if prev is not None and (window[0] < prev.window[0] or window[1] < prev.window[1]):
+            raise t.error("window", f"burns listed in time order (this window is earlier than "
+                                    f"burn #{i - 1}'s)", _epochs(window))
+        if seen_return and spec.leg == "outbound":
+            raise t.error("leg", "'return' (an outbound burn cannot follow a return burn)", spec.leg)
+        seen_return |= spec.leg == "return"
+        burns.append(spec)
+        prev = spec
+    return tuple(burns)
+
+
+def _arrival(t: "_Table", start, burns) -> ReturnSpec:
+    d = ReturnSpec()
+    target = t.choice("target", ("entry", "perigee"), d.target)
+    alt = t.number("entry_altitude_km", ENTRY_INTERFACE_ALT, lo=0.0, hi=1000.0, lo_open=True)
+    window = t.epoch_pair("epoch_window", None, strict=True)
+    t0 = start.epoch if isinstance(start, StateStart) else start.epoch_window[0]
+    if window is not None and window[0] < t0:
+        raise t.error("epoch_window", "an arrival window that opens after the start", _epochs(window))
+    if window is not None and window[1] <= burns[0].window[0]:
+        raise t.error("epoch_window", "an arrival window that closes after the first burn window "
+                                      "opens", _epochs(window))
+    spec = ReturnSpec(
+        target=target, entry_radius_km=R_EARTH + alt,
+        flight_path_deg=t.pair("flight_path_deg", d.flight_path_deg, lo=-90.0, hi=0.0),
+        perigee_alt_km=t.pair("perigee_altitude_km", d.perigee_alt_km, lo=0.0, hi=1e6),
+        epoch_window=window,
+        inclination_deg=t.pair("inclination_deg", None, lo=0.0, hi=180.0),
+        max_duration_days=t.number("max_duration_days", None, lo=0.0, hi=100.0, lo_open=True))
+    t.done()
+    return spec
+
+
+def _objective(t: "_Table") -> Objective:
+    kind = t.choice("kind", ("min-dv", "earliest", "weighted"), Objective().kind)
+    budget = t.number("dv_budget_mps", None, lo=0.0, hi=1e5, lo_open=True)
+    rate = t.number("mps_per_day", 0.0, lo=0.0, hi=1e5)
+    if kind == "earliest" and budget is None:
+        raise t.error("dv_budget_mps", "a Δv budget in m/s (kind = \"earliest\" needs one)")
+    if kind == "weighted" and "mps_per_day" not in t.data:
+        raise t.error("mps_per_day", "a weight in m/s per day (kind = \"weighted\" needs one)")
+    t.done()
+    return Objective(kind=kind, dv_budget_mps=budget, mps_per_day=rate)
+
+
+def _epochs(pair):
+    return [format_epoch(x, 0) + " TDB" for x in pair]
+
+
+class _Table:
+    """One TOML table being read: typed getters that remember which keys were used."""
+
+    def __init__(self, source: str, label: str, name: str, data: dict):
+        self.source, self.label, self.name, self.data, self.used = source, label, name, data, set()
+        for key in data:
+            if key not in KEYS[name]:
+                raise self.error_unknown(key, KEYS[name], section=not name)
+
+    @classmethod
+    def sub(cls, parent: "_Table", key: str, required: bool = False) -> "_Table":
+        value = parent.get(key, _REQUIRED if required else {}, "a table")
+        label = f"{parent.label[:-1]}.{key}]" if parent.label else f"[{key}]"
+        if not isinstance(value, dict):
+            raise parent.error(key, "a table", value)
+        return cls(parent.source, label, f"{parent.name}.{key}" if parent.name else key, value)
+
+    # -- errors ------------------------------------------------------------------------------
+    def where(self, key: str) -> str:
+        if not self.label:
+            return f"{self.source}: [{key}]"
+        return f"{self.source}: {self.label}.{key}"
+
+    def error(self, key: str, expected: str, got=_REQUIRED) -> ProblemError:
+        if got is _REQUIRED:
+            return ProblemError(f"{self.where(key)}: missing; expected {expected}")
+        return ProblemError(f"{self.where(key)}: expected {expected}, got {_show(got)}")
+
+    def error_unknown(self, key, known, section=False) -> ProblemError:
+        near = difflib.get_close_matches(str(key), known, n=1)
+        hint = f"; did you mean {near[0]!r}?" if near else f"; expected one of {', '.join(known)}"
+        kind = "unknown section" if section else "unknown key"
+        return ProblemError(f"{self.where(key)}: {kind}{hint}")
+
+    # -- getters -----------------------------------------------------------------------------
+    def get(self, key, default=_REQUIRED, expected="a value"):
+        self.used.add(key)
+        if key in self.data:
+            return self.data[key]
+        if default is _REQUIRED:
+            raise self.error(key, expected)
+        return default
+
+    def done(self, context: str = ""):
+        """Reject valid keys that this variant of the table does not use."""
+        for key in self.data:
+            if key not in self.used:
+                raise ProblemError(f"{self.where(key)}: not used here{context}; expected only "
+                                   f"{', '.join(sorted(self.used))}")
+
+    def number(self, key, default=_REQUIRED, lo=-math.inf, hi=math.inf, lo_open=False):
+        what = _range_text("a number", lo, hi, lo_open)
+        x = self.get(key, default, what)
+        if x is default and key not in self.data:
+            return x
+        if not _is_number(x) or not (lo < x if lo_open else lo <= x) or not x <= hi:
+            raise self.error(key, what, x)
+        return float(x)
+
+    def integer(self, key, default, lo, hi):
+        what = f"a whole number from {lo} to {hi}"
+        x = self.get(key, default, what)
+        if isinstance(x, bool) or not isinstance(x, int) or not lo <= x <= hi:
+            raise self.error(key, what, x)
+        return x
+
+    def boolean(self, key, default):
+        x = self.get(key, default, "true or false")
+        if not isinstance(x, bool):
+            raise self.error(key, "true or false", x)
+        return x
+
+    def string(self, key, default=_REQUIRED, pattern=None, what="a string"):
+        x = self.get(key, default, what)
+        if not isinstance(x, str) or (pattern is not None and not pattern.fullmatch(x)):
+            raise self.error(key, what, x)
+        return x
+
+    def choice(self, key, options, default=_REQUIRED):
+        what = "one of " + ", ".join(f'"{o}"' for o in options)
+        x = self.get(key, default, what)
+        if x not in options or not isinstance(x, str):
+            raise self.error(key, what, x)
+        return x
+
+    def vector(self, key):
+        x = self.get(key, _REQUIRED, "three numbers")
+        if not (isinstance(x, list) and len(x) == 3 and all(_is_number(v) for v in x)):
+            raise self.error(key, "three numbers", x)
+        return tuple(float(v) for v in x)
+
+    def pair(self, key, default, lo=-math.inf, hi=math.inf):
+        what = _range_text("two numbers", lo, hi) + ", the first smaller"
+        x = self.get(key, default, what)
+        if x is default and key not in self.data:
+            return x
+        if not (isinstance(x, list) and len(x) == 2 and all(_is_number(v) and lo <= v <= hi for v in x)
+                and x[0] < x[1]):
+            raise self.error(key, what, x)
+        return float(x[0]), float(x[1])
+
+    def epoch(self, key):
+        x = self.get(key, _REQUIRED, "an epoch like \"2027-05-10T00:00:00 TDB\"")
+        try:
+            return parse_epoch(x)
+        except ValueError:
+            raise self.error(key, "an ISO-8601 epoch in TDB like \"2027-05-10T00:00:00 TDB\"", x) from None
+
+    def epoch_pair(self, key, default=_REQUIRED, strict=False):
+        order = "the first earlier" if strict else "the first no later"
+        what = f"two epochs like [\"2027-05-10T00:00:00 TDB\", \"2027-05-11T00:00:00 TDB\"], {order}"
+        x = self.get(key, default, what)
+        if x is default and key not in self.data:
+            return x
+        try:
+            if not (isinstance(x, list) and len(x) == 2):
+                raise ValueError
+            lo, hi = parse_epoch(x[0]), parse_epoch(x[1])
+        except ValueError:
+            raise self.error(key, what, x) from None
+        if lo > hi or (strict and lo == hi):
+            raise self.error(key, what, x)
+        return lo, hi
+
+
+def _is_number(x) -> bool:
+    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+
+
+def _range_text(what, lo, hi, lo_open=False):
+    """``"a number from 0 to 180"``, ``"two numbers between -90 and 0"``, ``"a number above 0"`` ..."""
+    if lo == -math.inf and hi == math.inf:
+        return what + " (finite)"
+    if hi == math.inf:
+        return f"{what} {'above' if lo_open else 'of at least'} {_num(lo)}"
+    if lo == -math.inf:
+        return f"{what} of at most {_num(hi)}"
+    if what != "a number":
+        return f"{what} between {_num(lo)} and {_num(hi)}"
+    return (f"a number above {_num(lo)} and at most {_num(hi)}" if lo_open
+            else f"a number from {_num(lo)} to {_num(hi)}")
+
+
+def _num(x: float) -> str:
+    return f"{x:,.0f}" if x == int(x) and abs(x) >= 1e4 else f"{x:g}"
+
+
+def _show(x) -> str:
+    text = repr(x)
+    return text if len(text) <= 80 else text[:77] + "..."
+
+
+def describe_problem(problem: Problem) -> str:
+    """A few lines saying what a problem asks for (``slingback validate``)."""
+    p, tdb = problem, lambda t: format_epoch(t, 0) + " TDB"
+    if isinstance(p.start, StateStart):
+        start = f"state at {tdb(p.start.epoch)}, {math.dist(p.start.state[:3], (0, 0, 0)):,.0f} km from Earth"
+    else:
+        start = (f"parking orbit {p.start.altitude_km:g} km, {p.start.inclination_deg:g} deg, departing "
+                 f"{tdb(p.start.epoch_window[0])} to {tdb(p.start.epoch_window[1])}")
+    a = p.arrival
+    arrive = (f"entry interface {a.entry_radius_km - R_EARTH:g} km, flight-path angle {list(a.flight_path_deg)} deg"
+              if a.target == "entry" else f"vacuum perigee {list(a.perigee_alt_km)} km")
+    lines = [f"scenario   {p.name}" + (f" ({p.vehicle})" if p.vehicle else ""),
+             f"model      {p.model.kind}" + (f", continuation {' -> '.join(p.model.continuation)}"
+                                               if p.model.continuation else ""),
+             f"start      {start}"]
+    lines += [f"burn {i:<5d} {b.direction}, {b.leg}, up to {b.max_dv_mps:g} m/s, "
+              f"{tdb(b.window[0])} to {tdb(b.window[1])}" for i, b in enumerate(p.burns, 1)]
+    lines += [f"perilune   {list(p.lunar.altitude_km)} km", f"arrival    {arrive}",
+              f"objective  {p.objective.kind}"]
+    return "\n".join(lines)
+
+
+# ------------------------------------------------------------------------------------------------
+# Writing
+# ------------------------------------------------------------------------------------------------
+def problem_to_dict(problem: Problem) -> dict:
+    """The table form of a problem (what :func:`problem_from_dict` reads; TOML- and JSON-ready).
+
+    Epochs are written as TDB strings with just enough decimals to read back to the same float,
+    so ``problem_from_dict(problem_to_dict(p)) == p``.  Optional settings left at None are omitted.
+    """
+    p = problem
+    scenario = {"name": p.name}
+    if p.description:
+        scenario["description"] = p.description
+    if p.vehicle:
+        scenario["vehicle"] = p.vehicle
+    model = {"kind": p.model.kind, "sun": p.model.sun, "j2": p.model.j2,
+             "continuation": list(p.model.continuation)}
+    if p.model.moon:
+        model["moon"] = {k: (_epoch_text(v) if k == "epoch" else v) for k, v in p.model.moon.items()}
+    if isinstance(p.start, StateStart):
+        start = {"kind": "state", "epoch": _epoch_text(p.start.epoch),
+                 "position_km": list(p.start.state[:3]), "velocity_kms": list(p.start.state[3:])}
+    else:
+        start = {"kind": "parking", "altitude_km": p.start.altitude_km,
+                 "inclination_deg": p.start.inclination_deg,
+                 "epoch_window": [_epoch_text(x) for x in p.start.epoch_window]}
+        if p.start.raan_window_deg is not None:
+            start["raan_window_deg"] = list(p.start.raan_window_deg)
+    burns = [{"window": [_epoch_text(x) for x in b.window], "max_dv_mps": b.max_dv_mps,
+              "direction": b.direction, "leg": b.leg} for b in p.burns]
+    a = p.arrival
+    ret = {"target": a.target, "entry_altitude_km": _short(a.entry_radius_km - R_EARTH,
+                                                           lambda x: R_EARTH + x == a.entry_radius_km),
+           "flight_path_deg": list(a.flight_path_deg), "perigee_altitude_km": list(a.perigee_alt_km)}
+    if a.epoch_window is not None:
+        ret["epoch_window"] = [_epoch_text(x) for x in a.epoch_window]
+    if a.inclination_deg is not None:
+        ret["inclination_deg"] = list(a.inclination_deg)
+    if a.max_duration_days is not None:
+        ret["max_duration_days"] = a.max_duration_days
+    objective = {"kind": p.objective.kind, "mps_per_day": p.objective.mps_per_day}
+    if p.objective.dv_budget_mps is not None:
+        objective["dv_budget_mps"] = p.objective.dv_budget_mps
+    t = p.tolerances
+    return {
+        "scenario": scenario, "model": model, "start": start, "burn": burns,
+        "lunar": {"perilune_altitude_km": list(p.lunar.altitude_km)},
+        "return": ret, "objective": objective,
+        "tolerances": {"entry_position_km": t.entry_position_km, "flight_path_deg": t.flight_path_deg,
+                       "perilune_altitude_km": t.perilune_altitude_km,
+                       "perigee_altitude_km": t.perigee_altitude_km},
+        "mesh": {"segments": p.mesh.segments, "steps": p.mesh.steps,
+                 "max_refinements": p.mesh.max_refinements},
+        "limits": {"min_burn_spacing_hours": _hours(p.min_burn_spacing_s),
+                   "min_altitude_km": p.min_altitude_km},
+    }
+
+
+def _epoch_text(t: float) -> str:
+    """Shortest TDB string that parses back to exactly ``t``."""
+    for digits in range(0, 13):
+        text = format_epoch(t, digits) + " TDB"
+        if parse_epoch(text) == t:
+            return text
+    return text
+
+
+def _short(x: float, same) -> float:
+    """The shortest decimal rounding of ``x`` for which ``same(value)`` holds (else ``x``)."""
+    return next((r for r in (round(x, k) for k in range(16)) if same(r)), x)
+
+
+def _hours(seconds: float) -> float:
+    """Hours ``h`` with ``h * 3600.0 == seconds`` exactly (searching the neighbouring floats)."""
+    h = seconds / 3600.0
+    for candidate in (h, math.nextafter(h, math.inf), math.nextafter(h, -math.inf)):
+        if candidate * 3600.0 == seconds:
+            return candidate
+    return h
+
+
+def dumps_toml(d: dict) -> str:
+    """Write the table form of a problem as TOML (the subset our files use).
+
+    Handles nested tables, arrays of tables, strings, booleans, numbers and arrays of those.
+    """
+    lines: list[str] = []
+
+    def value(v) -> str:
+        if isinstance(v, bool):
+            return "true" if v else "false"
+        if isinstance(v, str):
+            return '"' + v.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n") + '"'
+        if isinstance(v, float):
+            return repr(v) if math.isfinite(v) else ("nan" if v != v else ("inf" if v > 0 else "-inf"))
+        if isinstance(v, int):
+            return str(v)
+        if isinstance(v, list):
+            return "[" + ", ".join(value(x) for x in v) + "]"
+        raise TypeError(f"cannot write {type(v).__name__} as a TOML value")
+
+    def table(name: str, t: dict, header: str | None):
+        scalars = {k: v for k, v in t.items() if not _is_table(v)}
+        if header is not None:
+            lines.extend(["", header])
+        lines.extend(f"{_key(k)} = {value(v)}" for k, v in scalars.items())
+        for k, v in t.items():
+            sub = f"{name}.{_key(k)}" if name else _key(k)
+            if isinstance(v, dict):
+                table(sub, v, f"[{sub}]")
+            elif _is_table(v):
+                for item in v:
+                    table(sub, item, f"[[{sub}]]")
+
+    table("", d, None)
+    return "\n".join(lines).lstrip("\n") + "\n"
+
+
+def _is_table(v) -> bool:
+    return isinstance(v, dict) or (isinstance(v, list) and bool(v) and all(isinstance(x, dict) for x in v))
+
+
+def _key(k: str) -> str:
+    return k if re.fullmatch(r"[A-Za-z0-9_-]+", k) else '"' + k.replace('"', '\\"') + '"'
