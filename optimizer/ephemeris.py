@@ -469,6 +469,22 @@ class CircularMoon:
         self._P = np.array([cO, sO, 0.0])
         self._Q = np.array([-sO * ci, cO * ci, si])
 
+    @classmethod
+    def matching(cls, source, epoch: float, period_s: float | None = None) -> "CircularMoon":
+        """The circular Moon through ``source``'s Moon at ``epoch``: same distance, orbit plane
+        (from the position and velocity) and direction; ``period_s`` defaults to the sidereal month.
+        """
+        r = np.asarray(source.moon(epoch), dtype=float)
+        v = np.asarray(source.moon_velocity(epoch), dtype=float)
+        h = np.cross(r, v)
+        inc = math.degrees(math.acos(h[2] / np.linalg.norm(h)))
+        raan = math.atan2(h[0], -h[1])
+        node = np.array([math.cos(raan), math.sin(raan), 0.0])
+        u = math.atan2(np.dot(np.cross(node, r), h) / np.linalg.norm(h), np.dot(node, r))
+        return cls(radius_km=float(np.linalg.norm(r)), period_s=period_s or SIDEREAL_MONTH,
+                   inclination_deg=inc, raan_deg=math.degrees(raan), phase_deg=math.degrees(u),
+                   epoch=float(epoch))
+
     def _u(self, t):
         return self._phase + self.rate * (np.asarray(t, dtype=float) - self.epoch)
 

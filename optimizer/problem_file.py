@@ -33,7 +33,7 @@ __all__ = ["ProblemError", "load_problem", "problem_from_dict", "problem_to_dict
 MODEL_DESCRIPTIONS = {
     "two-body": "Earth as a point mass only (no Moon: for tests and first guesses).",
     "earth-moon": "Earth plus a Moon on a circular orbit set in [model.moon], Earth-centred.",
-    "cr3bp": "Circular restricted three-body problem, Earth-Moon rotating frame, non-dimensional.",
+    "cr3bp": "CR3BP dynamics (Earth and Moon on circular orbits about their barycentre, the Moon on the circle through DE421's Moon at the start) in Earth-centred inertial coordinates.",
     "ephemeris": "Earth, Moon (and Sun, optional Earth J2) at JPL DE421 positions, Earth-centred.",
 }
 

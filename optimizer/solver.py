@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 import time
+from dataclasses import replace
 
 import casadi as ca
 import numpy as np
@@ -327,7 +328,7 @@ def _claimed_events(tr, model, unpacked):
     return [perilune_record(zp[6], zp[:6], model), arrival_record(name, za[6], za[:6], model)]
 
 
-def _plan(problem, model, tr, unpacked, status, reason, verification, solver_log, x, lam):
+def _plan(problem, model, tr, unpacked, status, reason, verification, solver_log, x, lam, stages=()):
     burns = [make_burn(t, dv, pre) for t, dv, pre in unpacked["burns"]]
     nodes = np.hstack([zs if i == 0 else zs[:, 1:] for i, zs in enumerate(unpacked["phases"])])
     return Plan(
@@ -335,7 +336,8 @@ def _plan(problem, model, tr, unpacked, status, reason, verification, solver_log
         start_epoch=float(unpacked["start"][6]), start_state=tuple(map(float, unpacked["start"][:6])), burns=burns,
         events=_claimed_events(tr, model, unpacked), trajectory_t=nodes[6].copy(), trajectory_y=nodes[:6].T.copy(),
         verification=verification,
-        solver={**solver_log[-1], "software": f"slingback {__version__}, CasADi {ca.__version__}, IPOPT",
+        solver={**solver_log[-1], "continuation": list(stages),
+                "software": f"slingback {__version__}, CasADi {ca.__version__}, IPOPT",
                 "mesh": {"segments": tr.segments, "steps": tr.steps}, "attempts": solver_log},
         problem=problem_dict(problem),
         warm={"x": list(map(float, x)), "lam_x": list(map(float, lam[0])), "lam_g": list(map(float, lam[1])),
@@ -349,6 +351,21 @@ def problem_dict(problem):
     except ImportError:  # the file layer is optional for library use
         return problem.to_dict()
     return problem_to_dict(problem)
+
+
+def _continuation(problem, say, ipopt_options):
+    """Solve the problem in each cheaper model of ``problem.model.continuation`` in turn, each
+    warm-starting the next; returns (the last usable plan or None, a record per stage)."""
+    plan, stages = None, []
+    for kind in problem.model.continuation:
+        sub = replace(problem, model=replace(problem.model, kind=kind, continuation=()))
+        say(f"continuation: solving in the {kind} model first")
+        trial = solve(sub, warm=plan, progress=say, ipopt_options=ipopt_options)
+        stages.append({"model": kind, "status": trial.status, "iterations": trial.solver.get("iterations"),
+                       "wall_s": trial.solver.get("wall_s"), "total_dv_mps": trial.total_dv_mps})
+        if trial.status in ("verified", "unverified"):
+            plan = trial
+    return plan, stages
 
 
 def model_span(problem) -> tuple[float, float]:
@@ -380,6 +397,9 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
     """
     say = progress or (lambda msg: None)
     t_start = time.perf_counter()
+    stages = []
+    if problem.model.continuation and warm is None and model is None:
+        warm, stages = _continuation(problem, say, ipopt_options)
     if model is None:
         model = build_model(problem.model, *model_span(problem))
     steps = [problem.mesh.steps] * (len(problem.burns) + 2)
@@ -391,8 +411,9 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
         x0 = np.asarray(warm.warm["x"], dtype=float)
         if x0.size != tr.x0.size:
             raise SolveError("the warm-start plan does not match this problem's layout")
-        lam = (np.asarray(warm.warm["lam_x"]), np.asarray(warm.warm["lam_g"]))
-        say("warm start from the given plan")
+        if warm.model.get("name") == problem.model.kind:  # same physics: multipliers carry over too
+            lam = (np.asarray(warm.warm["lam_x"]), np.asarray(warm.warm["lam_g"]))
+        say("warm start from the given plan" + ("" if lam is not None else " (primal point only)"))
     else:
         tr = Transcription(problem, model, steps, problem.mesh.segments)
         say("initial guess: targeted coast")
@@ -414,7 +435,7 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
             reason = f"IPOPT stopped with {rec['status']}"
             if why:
                 reason += "; largest constraint violations at the last iterate: " + ", ".join(why)
-            return _plan(problem, model, tr, unpacked, status, reason, None, log, x, lam)
+            return _plan(problem, model, tr, unpacked, status, reason, None, log, x, lam, stages)
         claimed = _claimed_events(tr, model, unpacked)
         burns = [make_burn(t, dv, pre) for t, dv, pre in unpacked["burns"]]
         start = unpacked["start"]
@@ -423,7 +444,7 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
         if ver.passed:
             say(f"verified: total Δv {sum(b.dv_mps for b in burns):.3f} m/s")
             log[-1]["end_to_end_s"] = time.perf_counter() - t_start
-            return _plan(problem, model, tr, unpacked, "verified", "", ver, log, x, lam)
+            return _plan(problem, model, tr, unpacked, "verified", "", ver, log, x, lam, stages)
         say("verification failed: " + "; ".join(ver.violations))
         if attempt == problem.mesh.max_refinements:
             break
@@ -435,4 +456,4 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
         tr = Transcription(problem, model, new_steps, problem.mesh.segments)
         x0 = x
     reason = "the re-propagated path disagrees with the optimiser: " + "; ".join(ver.violations)
-    return _plan(problem, model, tr, unpacked, "unverified", reason, ver, log, x, lam)
+    return _plan(problem, model, tr, unpacked, "unverified", reason, ver, log, x, lam, stages)

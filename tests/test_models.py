@@ -194,3 +194,32 @@ def test_perturbation_near_earth_centre_is_tidal(fit30, body):
             floor = 10.0 * np.finfo(float).eps * gm / d**2
             bound = 5.0 * np.linalg.norm(r) / d * np.linalg.norm(tidal) + floor
             assert np.linalg.norm(a - tidal) < bound
+
+
+def test_earth_centred_circular_moon_is_the_cr3bp():
+    # The CR3BP (Szebehely, Theory of Orbits, 1967, ch. 1) is Earth and Moon on circular orbits
+    # about their barycentre.  Seen from Earth, with the indirect term, that is EarthCentred with a
+    # circular Moon whose rate obeys n^2 a^3 = GM_E + GM_M: propagating the same state in both
+    # frames must give the same path (this is what the "cr3bp" kind of the solver uses).
+    from optimizer.constants import GM_EARTH, GM_MOON
+    from optimizer.ephemeris import CircularMoon
+    from optimizer.models import EarthCentred
+    from optimizer.propagate import propagate
+
+    rot = CR3BP()
+    mu, L, T = rot.mu, rot.length_unit, rot.time_unit
+    period = 2 * np.pi * np.sqrt(L**3 / (GM_EARTH + GM_MOON))
+    ecm = EarthCentred(CircularMoon(radius_km=L, period_s=period), sun=False, name="cr3bp")
+
+    def to_earth_centred(tau, y):
+        c, s = np.cos(tau), np.sin(tau)
+        R = np.array([[c, -s, 0], [s, c, 0], [0, 0, 1]])
+        rho = y[:3] + [mu, 0, 0]
+        return np.r_[L * R @ rho, L / T * R @ (y[3:] + np.cross([0, 0, 1], rho))]
+
+    y0 = np.array([0.45, 0.62, 0.03, -0.35, 0.12, 0.02])  # cislunar, clear of both bodies
+    arc_rot = propagate(rot, 0.0, y0, 2.0)
+    arc_ecm = propagate(ecm, 0.0, to_earth_centred(0.0, y0), 2.0 * T)
+    want = to_earth_centred(2.0, arc_rot.y[:, -1])
+    assert np.linalg.norm(arc_ecm.y[:3, -1] - want[:3]) < 1e-3  # km, after ~8.7 days
+    assert np.linalg.norm(arc_ecm.y[3:, -1] - want[3:]) < 1e-8  # km/s
