@@ -43,18 +43,18 @@ def perilune_state(model, t_p, alt_km, angle, speed, tilt=0.0):
     return np.r_[rm + (model.moon.radius + alt_km) * u, vm - speed * w]
 
 
-def _near_perigee(model, t_p, y, days, sign):
+def _near_perigee(model, t_p, y, days, sign, rtol=SEED_RTOL):
     arc = propagate(model, t_p, y, t_p + sign * days * 86400.0, events=("perigee",), terminal=(),
-                    rtol=SEED_RTOL, atol=SEED_RTOL)
+                    rtol=rtol, atol=rtol)
     near = [e for e in arc.events if np.linalg.norm(e.y[:3]) < 150000.0]
     return near[0] if near else None
 
 
-def ballistic(model, t_p, alt_km, angle, speed, tilt=0.0, days=5.0) -> Seed:
+def ballistic(model, t_p, alt_km, angle, speed, tilt=0.0, days=5.0, rtol=SEED_RTOL) -> Seed:
     """Propagate both ways from a perilune state and report the two perigees."""
     y = perilune_state(model, t_p, alt_km, angle, speed, tilt)
-    dep = _near_perigee(model, t_p, y, days, -1.0)
-    arr = _near_perigee(model, t_p, y, days, 1.0)
+    dep = _near_perigee(model, t_p, y, days, -1.0, rtol)
+    arr = _near_perigee(model, t_p, y, days, 1.0, rtol)
     alt = lambda e: np.linalg.norm(e.y[:3]) - model.earth.radius if e is not None else 1e6  # noqa: E731
     return Seed(t_p, y, dep, arr, alt(dep), alt(arr))
 
@@ -66,22 +66,23 @@ def inclination_deg(y) -> float:
 
 
 def circumlunar(model, t_p, alt_km=150.0, departure_alt_km=200.0, return_alt_km=40.0,
-                guess=(0.0, 2.5), departure_inclination_deg=None) -> Seed:
+                guess=(0.0, 2.5), departure_inclination_deg=None, rtol=SEED_RTOL) -> Seed:
     """The ballistic free return with the given perilune, departure and return perigee altitudes
     (and, when given, the inclination of the departure orbit: the pass plane is then tilted too).
 
     Raises ValueError when the root-finding does not reach both altitudes within 1 km.
     """
     def f(p):
-        s = ballistic(model, t_p, alt_km, *p)
+        s = ballistic(model, t_p, alt_km, *p, rtol=rtol)
         out = [s.departure_alt_km - departure_alt_km, s.return_alt_km - return_alt_km]
         if departure_inclination_deg is not None:
             inc = inclination_deg(s.departure.y) if s.departure is not None else 180.0
             out.append(100.0 * (inc - departure_inclination_deg))
         return np.array(out) / 1000.0
 
-    p = fsolve(f, list(guess) + ([0.0] if departure_inclination_deg is not None else []), xtol=1e-13)
-    seed = ballistic(model, t_p, alt_km, *p)
+    p = fsolve(f, list(guess) + ([0.0] if departure_inclination_deg is not None else []),
+               xtol=max(1e-13, rtol * 10))
+    seed = ballistic(model, t_p, alt_km, *p, rtol=rtol)
     if abs(seed.departure_alt_km - departure_alt_km) > 1.0 or abs(seed.return_alt_km - return_alt_km) > 1.0 \
             or (departure_inclination_deg is not None
                 and abs(inclination_deg(seed.departure.y) - departure_inclination_deg) > 0.01):

@@ -181,7 +181,7 @@ def injection_guess(problem, model, tr: Transcription):
     for _ in range(3):  # move the perilune so that the departure falls mid-window
         try:
             seed = circumlunar(model, t_p, alt, st.altitude_km, ret_alt, guess=(0.0, 2.5),
-                               departure_inclination_deg=st.inclination_deg)
+                               departure_inclination_deg=st.inclination_deg, rtol=GUESS_RTOL)
         except ValueError as exc:
             raise SolveError(f"no injection guess: {exc}") from None
         if abs(seed.departure.t - t_mid) < 600.0:
@@ -368,6 +368,16 @@ def _continuation(problem, say, ipopt_options):
     return plan, stages
 
 
+def relayout(tr_from: Transcription, x, tr_to: Transcription) -> np.ndarray:
+    """The point ``x`` of one transcription as a starting point of another with the same coasts
+    (e.g. a burn switched between fixed and free direction)."""
+    u = tr_from.unpack(x)
+    x = np.asarray(x, dtype=float)
+    start = {k: float(x[tr_from.v.index[k]][0]) for k in ("tau_injection", "raan", "arg_latitude")
+             if k in tr_from.v.index}
+    return tr_to.guess_vector(u["phases"], [dv for _, dv, _ in u["burns"]], u["slens"], start)
+
+
 def model_span(problem) -> tuple[float, float]:
     """Epochs a problem's model must cover (the injection seed looks up to 3 days back)."""
     back = 3.0 * 86400.0 if is_injection(problem) else 0.0
@@ -414,6 +424,19 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
         if warm.model.get("name") == problem.model.kind:  # same physics: multipliers carry over too
             lam = (np.asarray(warm.warm["lam_x"]), np.asarray(warm.warm["lam_g"]))
         say("warm start from the given plan" + ("" if lam is not None else " (primal point only)"))
+    elif is_injection(problem) and problem.burns[0].direction == "free":
+        # A free-direction injection is started from the same design with the injection along the
+        # velocity (measured: IPOPT diverges from the raw seed, converges from this point).
+        along = replace(problem, burns=(replace(problem.burns[0], direction="along"),) + problem.burns[1:])
+        say("free-direction injection: solving with the injection along the velocity first")
+        first = solve(along, progress=say, model=model, ipopt_options=ipopt_options)
+        if first.status not in ("verified", "unverified"):
+            return first
+        stages = [{"model": problem.model.kind, "status": first.status, "stage": "injection along velocity",
+                   "iterations": first.solver.get("iterations"), "total_dv_mps": first.total_dv_mps}]
+        steps = list(first.warm["steps"])
+        tr = Transcription(problem, model, steps, problem.mesh.segments)
+        x0 = relayout(Transcription(along, model, steps, problem.mesh.segments), first.warm["x"], tr)
     else:
         tr = Transcription(problem, model, steps, problem.mesh.segments)
         say("initial guess: targeted coast")
