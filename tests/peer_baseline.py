@@ -46,6 +46,7 @@ class BaselineResult:
     dv: np.ndarray
     perilune_altitude_km: float
     flight_path_deg: float
+    arrival_inclination_deg: float  # of the geocentric orbit at entry to the ICRF equator (nan: no entry)
     iterations: int
     propagations: int
     wall_s: float
@@ -74,8 +75,10 @@ class SingleShooting:
         ``start`` a StateStart, exactly one ``"free"`` burn, ``arrival.target == "entry"``.
     rtol, atol : float
         Propagator tolerances.
-    fd_step : float
-        Forward-difference step, in hours for the epoch and m/s for the Δv components.
+    fd_step : float or None
+        Forward-difference step, in hours for the epoch and m/s for the Δv components.  None leaves
+        the constraint derivatives to SLSQP's own forward differences (scipy's default step): the
+        untuned way, kept for comparison.
     """
 
     def __init__(self, model, problem, rtol=VERIFY_RTOL, atol=VERIFY_ATOL, fd_step=1e-5):
@@ -97,7 +100,8 @@ class SingleShooting:
         return self.window[0] + x[0] * HOUR
 
     def simulate(self, x) -> np.ndarray:
-        """(perilune altitude km, entry flight-path angle deg) of the path with burn ``x``."""
+        """(perilune altitude km, entry flight-path angle deg, arrival inclination deg) of the path
+        with burn ``x`` (inclination nan when the path does not reach the entry interface)."""
         key = tuple(float(v) for v in x)
         if key in self._cache:
             return self._cache[key]
@@ -112,24 +116,27 @@ class SingleShooting:
         self.propagations += 1 + (tb > self.t0)
         peri = arc.first("perilune")
         if peri is None:
-            out = np.array([1e6, 90.0])
+            out = np.array([1e6, 90.0, np.nan])
         else:
             alt = float(np.linalg.norm(peri.y[:3] - model.moon_position(peri.t)) - model.moon.radius)
             after = [e for e in arc.events if e.t > peri.t]
             entry = next((e for e in after if e.name == "entry"), None)
+            inc = np.nan
             if entry is not None:
                 fpa = math.degrees(flight_path_angle(entry.y[:3], entry.y[3:]))
+                h = np.cross(entry.y[:3], entry.y[3:])
+                inc = math.degrees(math.acos(h[2] / np.linalg.norm(h)))
             else:
                 perigee = next((e for e in after if e.name == "perigee"), None)
                 rp = np.linalg.norm(perigee.y[:3]) if perigee is not None else 10.0 * r_entry
                 fpa = 100.0 * (rp - r_entry) / r_entry  # continued past grazing, see module notes
-            out = np.array([alt, fpa])
+            out = np.array([alt, fpa, inc])
         self._cache[key] = out
         return out
 
     # -- the NLP ------------------------------------------------------------------------------
     def _constraints(self, x):
-        alt, fpa = self.simulate(x)
+        alt, fpa, _ = self.simulate(x)
         lo, hi = self.problem.lunar.altitude_km
         flo, fhi = self.problem.arrival.flight_path_deg
         cap = self.problem.burns[0].max_dv_mps
@@ -165,14 +172,17 @@ class SingleShooting:
         bounds = [(0.0, (hi - lo) / HOUR)] + [(-cap, cap)] * 3
         self.propagations = 0
         start = time.perf_counter()
-        res = minimize(self._objective, x0, jac=True, method="SLSQP", bounds=bounds,
-                       constraints=[{"type": "ineq", "fun": self._constraints, "jac": self._constraints_jac}],
+        cons = {"type": "ineq", "fun": self._constraints}
+        if self.fd_step is not None:
+            cons["jac"] = self._constraints_jac
+        res = minimize(self._objective, x0, jac=True, method="SLSQP", bounds=bounds, constraints=[cons],
                        options={"maxiter": maxiter, "ftol": ftol})
         wall = time.perf_counter() - start
-        alt, fpa = self.simulate(res.x)
+        alt, fpa, inc = self.simulate(res.x)
         return BaselineResult(success=bool(res.success), message=str(res.message), epoch=self.epoch(res.x),
                               dv=res.x[1:] / 1000.0, perilune_altitude_km=float(alt),
-                              flight_path_deg=float(fpa), iterations=int(res.nit),
+                              flight_path_deg=float(fpa), arrival_inclination_deg=float(inc),
+                              iterations=int(res.nit),
                               propagations=self.propagations, wall_s=wall)
 
 

@@ -92,9 +92,9 @@ def test_zero_dv_on_a_free_return(model, natural):
 
     Known answer: 0 m/s, from the fixture's scipy root-finding on the propagator (not from our
     NLP).  The windows are centred on the values the propagator finds on that path, so the
-    uncorrected path is feasible.  Tolerance 0.05 m/s: the interior-point solution keeps a
-    barrier-sized remnant of the burn (measured ~1 mm/s), far below any real correction (the
-    abort case below needs ~7 m/s).
+    uncorrected path is feasible.  Tolerance 0.05 m/s: an interior-point solution may keep a
+    barrier-sized remnant of the burn (measured ~1 mm/s before the solver learnt to re-solve
+    near-zero burns at zero), far below any real correction (the abort case below needs ~7 m/s).
     """
     arc = propagate(model, T_START, natural, T_START + 8 * DAY, events=("perilune", "entry"),
                     entry_radius=ENTRY_RADIUS)
@@ -208,7 +208,8 @@ def test_earliest_arrival_within_budget(abort_plan, abort_problem, model):
 def test_weighted_objective_trades_dv_for_time(abort_plan, abort_problem, model):
     """Δv + 5 m/s per day of flight.  The minimum-Δv plan is feasible for this problem, so the
     weighted optimum can be no worse on the weighted cost, and no cheaper in Δv: hence it arrives
-    no later.  (Tolerances 1 mm/s and 1 s: solver precision.)"""
+    no later.  (IPOPT is a local solver; on this case it must not stop on a worse branch.
+    Tolerances 1 mm/s and 1 s: solver precision.)"""
     rate = 5.0
     prob = dataclasses.replace(abort_problem, objective=Objective("weighted", mps_per_day=rate))
     plan = solve(prob, model=model)
