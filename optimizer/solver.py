@@ -97,14 +97,14 @@ def _coast(model, t0, y0, t1, events=("perilune", "perigee", "entry", "impact_ea
 
 
 def _return_momentum(model, t_peri, y_peri):
-    """Geocentric angular momentum (km^2/s) one day after perilune.
+    """Geocentric angular momentum vector (km^2/s) one day after perilune.
 
     The osculating perigee radius is about ``h^2 / (2 mu)`` on a near-parabolic return, but as a
     function of the burn it has a flat minimum at ``h = 0`` (a path through Earth's centre) where
-    Newton steps fail; ``|h|`` grows linearly away from it, so it is the quantity targeted.
+    Newton steps fail; ``h`` along a fixed normal is linear there, so that is what is targeted.
     """
     y = _coast(model, t_peri, y_peri, t_peri + 86400.0, events=()).y[:, -1]
-    return float(np.linalg.norm(np.cross(y[:3], y[3:])))
+    return np.cross(y[:3], y[3:])
 
 
 def _target_radius(problem, model):
@@ -119,56 +119,155 @@ def _first_perilune(arc, after):
     return next((e for e in arc.events if e.name == "perilune" and e.t > after), None)
 
 
-def linear_targeting(problem, model, t_burn, y_burn, t_end, iters=10):
-    """Least-norm Δv at ``t_burn`` that gives a perilune in range and the target return perigee.
+class _Encounter:
+    """What linear targeting measures of a coast after a burn: the incoming selenocentric
+    angular momentum (its size fixes the osculating perilune radius, and it stays smooth even
+    when the pass would hit the Moon) and the return's geocentric angular momentum."""
 
+    def __init__(self, model, t_burn, y, t_end):
+        arc = _coast(model, t_burn, y, t_end, events=("perilune",), terminal=("perilune",))
+        self.peri = _first_perilune(arc, t_burn)
+        if self.peri is None:
+            return
+        t_in = max(t_burn, self.peri.t - 6 * 3600.0)
+        z = arc.state(t_in)
+        d, w = z[:3] - model.moon_position(t_in), z[3:] - model.moon_velocity(t_in)
+        self.h_moon = float(np.linalg.norm(np.cross(d, w)))
+        self.v_inf2 = float(w @ w - 2 * model.gm_moon / np.linalg.norm(d))
+        self.alt = float(np.linalg.norm(self.peri.y[:3] - model.moon_position(self.peri.t)) - model.moon.radius)
+        self._model = model
+        self._h_earth = None
+
+    @property
+    def h_earth(self):
+        if self._h_earth is None:
+            self._h_earth = _return_momentum(self._model, self.peri.t, self.peri.y)
+        return self._h_earth
+
+
+def _newton(measure, goal, weight, basis, c0, iters, lower=None):
+    """Damped least-norm Newton on ``measure(c) = goal`` in the burn coordinates ``c``.
+
+    Returns (c, converged).  ``lower`` bounds the coordinates (fixed-direction burn sizes >= 0).
+    """
+    c = np.array(c0, dtype=float)
+    m = measure(c)
+    if m is None:
+        return c, False
+    for _ in range(iters):
+        err = (goal - m) / weight
+        if np.abs(err).max() < 1.0:
+            return c, True
+        jac = np.empty((len(goal), len(c)))
+        for k in range(len(c)):
+            ck = c.copy()
+            ck[k] += 1e-5
+            mk = measure(ck)
+            if mk is None:
+                return c, False
+            jac[:, k] = (mk - m) / 1e-5 / weight
+        step = np.linalg.lstsq(jac, err, rcond=None)[0]
+        for scale in (1.0, 0.5, 0.25, 0.1):
+            trial_c = c + scale * step
+            if lower is not None:
+                trial_c = np.maximum(trial_c, lower)
+            trial = measure(trial_c)
+            if trial is not None and np.abs((goal - trial) / weight).max() < np.abs(err).max():
+                c, m = trial_c, trial
+                break
+        else:
+            return c, False
+    return c, bool(np.abs((goal - m) / weight).max() < 1.0)
+
+
+def linear_targeting(problem, model, t_burn, y_burn, t_end, direction="free", cap_kms=np.inf, iters=12):
+    """Least-norm Δv at ``t_burn`` for a perilune in range and the target return perigee.
+
+    First the perilune alone (on the incoming selenocentric angular momentum), then perilune and
+    return together (on the geocentric angular momentum along the return's orbit normal, for
+    both senses of the normal: the return may pass either side of Earth), keeping the cheaper.
     Returns the Δv (km/s, shape (3,)).  Raises SolveError if the path never passes the Moon.
     """
     lo, hi = problem.lunar.altitude_km
     h_target = math.sqrt(2.0 * model.gm_earth * _target_radius(problem, model))
+    if direction == "free":
+        basis, lower = np.eye(3), None
+    else:
+        v = y_burn[3:] / np.linalg.norm(y_burn[3:])
+        basis, lower = (v if direction == "along" else -v)[:, None], np.zeros(1)
 
-    def measure(dv):
+    def encounter(c):
         y = y_burn.copy()
-        y[3:] += dv
-        arc = _coast(model, t_burn, y, t_end, events=("perilune",), terminal=("perilune",))
-        peri = _first_perilune(arc, t_burn)
-        if peri is None:
-            return None
-        alt = np.linalg.norm(peri.y[:3] - model.moon_position(peri.t)) - model.moon.radius
-        return np.array([alt, _return_momentum(model, peri.t, peri.y)])
+        y[3:] += basis @ c
+        e = _Encounter(model, t_burn, y, t_end)
+        return e if e.peri is not None else None
 
-    weight = np.array([1.0, h_target / 1000.0])  # 1 km of perilune ~ 0.1 % of the momentum
-    dv = np.zeros(3)
-    m = measure(dv)
-    if m is None:
+    first = encounter(np.zeros(basis.shape[1]))
+    if first is None:
         raise SolveError("the coast never passes the Moon, so no guess can be made from it; "
                          "start closer to the lunar encounter or give a warm start")
-    span = hi - lo
-    for _ in range(iters):
-        goal = np.array([np.clip(m[0], lo + 0.2 * span if span < 2000 else lo + 50.0,
-                                 hi - 0.2 * span if span < 2000 else lo + 0.5 * min(span, 2000.0)),
-                         h_target])
-        err = goal - m
-        if abs(err[0]) < 1.0 and abs(err[1]) < 1e-4 * h_target:
+    margin = min(50.0, 0.2 * (hi - lo))
+    alt_goal = float(np.clip(first.alt, lo + margin, min(hi, lo + 2000.0) - margin))
+    r_p = model.moon.radius + alt_goal
+    h_moon_goal = r_p * math.sqrt(max(first.v_inf2, 0.0) + 2 * model.gm_moon / r_p)
+    w_moon = h_moon_goal * 1e-3  # 0.1 % of the momentum: ~1 km of perilune
+
+    def perilune_only(c):
+        e = encounter(c)
+        return None if e is None else np.array([e.h_moon])
+
+    c, _ = _newton(perilune_only, np.array([h_moon_goal]), np.array([w_moon]), basis,
+                   np.zeros(basis.shape[1]), iters, lower)
+    # perilune and return together: each step is the least-norm change that meets the linearised
+    # perilune and puts |h_earth| on its target (a small non-convex problem, solved from several
+    # directions so that the return may pass either side of Earth)
+    e = encounter(c)
+    for _ in range(iters if e is not None else 0):
+        jm, je = np.empty(len(c)), np.empty((3, len(c)))
+        for k in range(len(c)):
+            ck = c.copy()
+            ck[k] += 1e-5
+            ek = encounter(ck)
+            if ek is None:
+                return basis @ c
+            jm[k] = (ek.h_moon - e.h_moon) / 1e-5
+            je[:, k] = (ek.h_earth - e.h_earth) / 1e-5
+        step = _return_step(e.h_moon, jm, h_moon_goal, e.h_earth, je, h_target, lower, c)
+        err0 = max(abs(e.h_moon - h_moon_goal) / w_moon, abs(np.linalg.norm(e.h_earth) - h_target) / (1e-3 * h_target))
+        if err0 < 1.0 or step is None:
             break
-        jac = np.empty((2, 3))
-        h = 1e-5
-        for k in range(3):
-            dk = dv.copy()
-            dk[k] += h
-            mk = measure(dk)
-            if mk is None:
-                raise SolveError("linear targeting left the lunar encounter")
-            jac[:, k] = (mk - m) / h
-        step = np.linalg.lstsq(jac, err, rcond=None)[0]
-        for scale in (1.0, 0.5, 0.25, 0.1):
-            trial = measure(dv + scale * step)
-            if trial is not None and np.abs((goal - trial) / weight).max() < np.abs(err / weight).max():
-                dv, m = dv + scale * step, trial
+        for scale in (1.0, 0.5, 0.25):
+            trial = encounter(c + scale * step)
+            if trial is None:
+                continue
+            err = max(abs(trial.h_moon - h_moon_goal) / w_moon,
+                      abs(np.linalg.norm(trial.h_earth) - h_target) / (1e-3 * h_target))
+            if err < err0:
+                c, e = c + scale * step, trial
                 break
         else:
             break
-    return dv
+    dv = basis @ c
+    return dv if np.linalg.norm(dv) <= cap_kms else np.zeros(3)
+
+
+def _return_step(hm, jm, hm_goal, he, je, h_goal, lower, c):
+    """Least-norm step ``d`` with ``hm + jm.d = hm_goal`` and ``|he + je d| = h_goal``."""
+    from scipy.optimize import minimize
+
+    cons = [{"type": "eq", "fun": lambda d: np.atleast_1d((hm + jm @ d - hm_goal) / hm_goal)},
+            {"type": "eq", "fun": lambda d: np.atleast_1d((np.sum((he + je @ d) ** 2) - h_goal**2) / h_goal**2)}]
+    if lower is not None:
+        cons.append({"type": "ineq", "fun": lambda d: c + d - lower})
+    _, sv, vt = np.linalg.svd(je)
+    reach = h_goal / max(sv[0], 1e-12)
+    best = None
+    for start in [sign * reach * v for v in vt[: min(2, len(vt))] for sign in (1.0, -1.0)]:
+        res = minimize(lambda d: d @ d, start, jac=lambda d: 2 * d, constraints=cons, method="SLSQP",
+                       options={"maxiter": 100, "ftol": 1e-14})
+        if res.success and (best is None or res.fun < best.fun):
+            best = res
+    return None if best is None else best.x
 
 
 def injection_guess(problem, model, tr: Transcription):
@@ -210,7 +309,7 @@ def injection_guess(problem, model, tr: Transcription):
 
 def _sample_phases(problem, model, tr, arcs, burns, t_start):
     """Cut the guessed path into the transcription's coasts and sample each."""
-    peri = _first_perilune(arcs[-1], burns[0][0] if burns else t_start)
+    peri = _first_perilune(arcs[-1], arcs[-1].t[0])
     if peri is None:
         raise SolveError("the guessed path has no perilune")
     arc = arcs[-1]
@@ -261,11 +360,11 @@ def initial_guess(problem, model, tr: Transcription):
         tb = max(lo, t) + 0.1 * (hi - max(lo, t)) if hi > max(lo, t) else max(lo, t)
         burns.append([tb, np.zeros(3)])
     outbound = [j for j, b in enumerate(problem.burns) if b.leg == "outbound"]
-    if outbound and problem.burns[outbound[0]].direction == "free":
+    if outbound:
         j = outbound[0]
-        tb = burns[j][0]
+        tb, spec = burns[j][0], problem.burns[outbound[0]]
         yb = _coast(model, t, y, tb, events=()).y[:, -1] if tb > t else y
-        burns[j][1] = linear_targeting(problem, model, tb, yb, t_end)
+        burns[j][1] = linear_targeting(problem, model, tb, yb, t_end, spec.direction, spec.max_dv_mps / 1000.0)
     # propagate the guessed path: one arc per outbound burn, then the rest
     arcs, tt, yy = [], t, y.copy()
     for j in outbound:
