@@ -572,6 +572,17 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
         sol, rec = _solve_nlp(tr, x0, lam, ipopt_options)
         rec["build_and_solve_s"] = time.perf_counter() - t_start
         log.append(rec)
+        if not rec["success"] and "Infeasible" not in rec["status"] and lam is None \
+                and "ipopt.hessian_approximation" not in (ipopt_options or {}):
+            # measured on the robustness set: where the exact Hessian stalls, a quasi-Newton run
+            # from the same start often converges (and the reverse), so try it before giving up
+            say(f"IPOPT: {rec['status']} after {rec['iterations']} iterations; retrying with a "
+                "limited-memory Hessian")
+            sol, rec = _solve_nlp(tr, x0, None, {**(ipopt_options or {}),
+                                                 "ipopt.hessian_approximation": "limited-memory"})
+            rec["hessian"] = "limited-memory"
+            rec["build_and_solve_s"] = time.perf_counter() - t_start
+            log.append(rec)
         x = np.asarray(sol["x"]).ravel()
         lam = (np.asarray(sol["lam_x"]).ravel(), np.asarray(sol["lam_g"]).ravel())
         unpacked = tr.unpack(x)
