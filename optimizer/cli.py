@@ -65,7 +65,14 @@ def _parser() -> argparse.ArgumentParser:
     q = add("validate", "load a problem file and report what it asks for")
     q.add_argument("file", metavar="FILE")
     q.add_argument("--json", action="store_true", help="print the problem's table form as JSON")
-    add("sweep", "trade studies over burn and arrival epochs (reserved: not implemented yet)")
+    q = add("sweep", "trade study: minimum Δv over burn epoch x arrival epoch (the file's [sweep] table)")
+    q.add_argument("file", metavar="FILE", help="problem file with a [sweep] table (docs/sweep-format.md)")
+    q.add_argument("--out", metavar="DIR", help="trade folder (default: outputs/<scenario name>-trade)")
+    q.add_argument("--force", action="store_true", help="replace an existing trade folder")
+    q.add_argument("--workers", type=int, metavar="N", help="local worker processes (default: every core)")
+    q.add_argument("--scheduler", metavar="ADDRESS", help="run the cells on a Dask distributed scheduler")
+    q.add_argument("--resume", metavar="DIR", help="save finished cells here and skip those already saved")
+    quiet_json(q)
     return p
 
 
@@ -205,8 +212,25 @@ def cmd_validate(args) -> int:
 
 
 def cmd_sweep(args) -> int:
-    _err("error: 'sweep' is reserved for trade studies and not implemented yet")
-    return EXIT_INPUT
+    from .trade import load_sweep_file, progress_text, run_sweep_file
+
+    problem, _ = load_sweep_file(args.file)  # bad input stops here, before anything is solved
+    out = Path(args.out) if args.out else Path("outputs") / f"{problem.name}-trade"
+    say = None if args.quiet else (lambda p: _err(progress_text(p)))
+    df, folder = run_sweep_file(args.file, out, workers=args.workers, scheduler=args.scheduler,
+                                resume_dir=args.resume, progress=say, force=args.force)
+    ok = df[df["status"] == "verified"]
+    summary = {"trade_folder": str(folder), "cells": int(len(df)), "verified": int(len(ok)),
+               "min_total_dv_mps": float(ok["total_dv_mps"].min()) if len(ok) else None}
+    if args.json:
+        print(json.dumps(summary, indent=1))
+    else:
+        print(f"{problem.name}: {summary['verified']} of {summary['cells']} cells verified; "
+              f"trade folder {folder}")
+    if not len(ok):
+        _err("no cell has a verified solution; reasons in trade.csv")
+        return EXIT_UNVERIFIED
+    return EXIT_OK
 
 
 COMMANDS = {"solve": cmd_solve, "check": cmd_check, "demo": cmd_demo, "models": cmd_models,

@@ -38,7 +38,9 @@ MODEL_DESCRIPTIONS = {
 }
 
 SECTIONS = ("scenario", "model", "start", "burn", "lunar", "return", "objective", "tolerances",
-            "mesh", "limits")
+            "mesh", "limits", "sweep")
+#: Sections read by another layer: a ``[sweep]`` table is checked by :mod:`optimizer.trade`.
+OTHER_LAYERS = ("sweep",)
 #: The keys each table may hold (checked first, so a typo is reported as a typo).
 KEYS = {
     "": SECTIONS,
@@ -101,7 +103,12 @@ def load_problem(path) -> Problem:
         message = str(exc).replace("(at end of document)",
                                    f"(at the end of the file, line {len(text.splitlines()) or 1})")
         raise ProblemError(f"{source}: invalid TOML: {message}") from None
-    return problem_from_dict(data, source=source)
+    problem = problem_from_dict(data, source=source)
+    if "sweep" in data:  # checked at the door too, though only a trade study uses it
+        from .trade import parse_sweep_spec
+
+        parse_sweep_spec(data["sweep"], problem, source)
+    return problem
 
 
 def problem_from_dict(d: dict, source: str = "<dict>") -> Problem:
@@ -120,6 +127,7 @@ def problem_from_dict(d: dict, source: str = "<dict>") -> Problem:
     """
     if not isinstance(d, dict):
         raise ProblemError(f"{source}: expected a table of sections, got {_show(d)}")
+    d = {k: v for k, v in d.items() if k not in OTHER_LAYERS}
     top = _Table(source, "", "", d)
     scenario = _Table.sub(top, "scenario", required=True)
     name = scenario.string("name", pattern=_NAME_RE,
