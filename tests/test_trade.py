@@ -376,7 +376,11 @@ def test_resume_cell_files_are_small_and_plain_json(swept):
 def test_problem_file_with_a_sweep_table(tmp_path):
     from pathlib import Path
 
-    text = (Path(__file__).resolve().parent.parent / "problems" / "demo-trade.toml").read_text()
+    shipped = (Path(__file__).resolve().parent.parent / "problems" / "demo-trade.toml").read_text()
+    shipped_problem, shipped_spec = trade.load_sweep_file(Path(__file__).resolve().parent.parent / "problems"
+                                                          / "demo-trade.toml")
+    assert len(shipped_spec.burn_epochs) == 12 and len(shipped_spec.arrival_epochs) == 12  # the 12 x 12 demo grid
+    text = shipped.split("\n[sweep]")[0]  # the same file without its own [sweep] table
     good = tmp_path / "trade.toml"
     good.write_text(text + '\n[sweep]\nburn_epochs = { start = "2027-05-11T22:00:00 TDB", '
                     'stop = "2027-05-12T06:00:00 TDB", count = 5 }\nreturn_durations_days = [4.0, 5.0]\n')
