@@ -56,6 +56,7 @@ import pandas as pd
 from . import __version__
 from .constants import CAUTION, SECONDS_PER_DAY
 from .plan import Plan
+from .export.run import move_into_place, refuse_existing
 from .problem import Objective, Problem
 from .timescales import format_epoch, parse_epoch
 
@@ -905,7 +906,7 @@ def run_sweep_file(path, out_dir, *, workers=None, scheduler=None, resume_dir=No
     """
     problem, s = load_sweep_file(path)
     out = Path(out_dir)
-    _refuse(out, force)
+    refuse_existing(out, force)
     df = sweep(problem, s.burn_epochs, s.arrival_epochs, return_durations_days=s.return_durations_days,
                arrival_tolerance_s=s.arrival_tolerance_s, burn_index=s.burn_index, max_iter=s.max_iter,
                retry=s.retry, workers=workers, scheduler=scheduler, resume_dir=resume_dir, progress=progress)
@@ -1050,7 +1051,7 @@ def write_sweep(df: pd.DataFrame, out_dir, *, problem: Problem | None = None, fo
     """
     meta = dict(meta or df.attrs.get("sweep", {}))
     out = Path(out_dir)
-    _refuse(out, force)
+    refuse_existing(out, force)
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
     try:
@@ -1062,33 +1063,11 @@ def write_sweep(df: pd.DataFrame, out_dir, *, problem: Problem | None = None, fo
         wrote_parquet = _parquet(df, tmp / "trade.parquet", meta)
         figures = _figures(df, front, tmp, meta)
         (tmp / "trade-report.md").write_text(_report(df, front, meta, figures, wrote_parquet, problem))
-        _move(tmp, out, force)
+        move_into_place(tmp, out, force)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return out
-
-
-def _refuse(out: Path, force: bool):
-    if out.exists() and not out.is_dir():
-        raise FileExistsError(f"{out} exists and is not a folder")
-    if out.exists() and not force:
-        raise FileExistsError(f"{out} already exists; use --force (force=True) to replace it")
-
-
-def _move(tmp: Path, out: Path, force: bool):
-    _refuse(out, force)
-    if not out.exists():
-        os.rename(tmp, out)
-        return
-    old = out.with_name(f".{out.name}.old-{uuid.uuid4().hex[:8]}")
-    os.rename(out, old)
-    try:
-        os.rename(tmp, out)
-    except BaseException:
-        os.rename(old, out)
-        raise
-    shutil.rmtree(old, ignore_errors=True)
 
 
 def _model_name(meta) -> str:

@@ -88,28 +88,30 @@ def write_run(plan, problem, out_dir, *, force: bool = False, model=None, create
         If ``out_dir`` exists and ``force`` is false (nothing is written).
     """
     out = Path(out_dir)
-    _refuse_existing(out, force)
+    refuse_existing(out, force)
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
     try:
         os.chmod(tmp, 0o755)
         _write_contents(plan, problem, tmp, model, created)
-        _move_into_place(tmp, out, force)
+        move_into_place(tmp, out, force)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return out
 
 
-def _refuse_existing(out: Path, force: bool):
+def refuse_existing(out: Path, force: bool):
+    """Raise FileExistsError if ``out`` exists (as anything but a folder, or at all without force)."""
     if out.exists() and not out.is_dir():
         raise FileExistsError(f"{out} exists and is not a folder")
     if out.exists() and not force:
         raise FileExistsError(f"{out} already exists; use --force (force=True) to replace it")
 
 
-def _move_into_place(tmp: Path, out: Path, force: bool):
-    _refuse_existing(out, force)
+def move_into_place(tmp: Path, out: Path, force: bool):
+    """Move the finished folder ``tmp`` to ``out``; with force, the old ``out`` is kept until then."""
+    refuse_existing(out, force)
     if not out.exists():
         os.rename(tmp, out)  # fails, rather than merges, if a folder appeared meanwhile
         return
