@@ -43,8 +43,6 @@ import json
 import math
 import multiprocessing
 import os
-import shutil
-import tempfile
 import time
 import uuid
 from dataclasses import dataclass
@@ -56,7 +54,7 @@ import pandas as pd
 from . import __version__
 from .constants import CAUTION, SECONDS_PER_DAY
 from .plan import Plan
-from .export.run import move_into_place, refuse_existing
+from .export.run import refuse_existing, staged_folder
 from .problem import Objective, Problem
 from .timescales import format_epoch, parse_epoch
 
@@ -1051,11 +1049,7 @@ def write_sweep(df: pd.DataFrame, out_dir, *, problem: Problem | None = None, fo
     """
     meta = dict(meta or df.attrs.get("sweep", {}))
     out = Path(out_dir)
-    refuse_existing(out, force)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
-    try:
-        os.chmod(tmp, 0o755)
+    with staged_folder(out, force) as tmp:
         front = pareto(df)
         header = _csv_header(meta, problem)
         _csv(df, tmp / "trade.csv", header + ["one row per cell of the grid"])
@@ -1063,10 +1057,6 @@ def write_sweep(df: pd.DataFrame, out_dir, *, problem: Problem | None = None, fo
         wrote_parquet = _parquet(df, tmp / "trade.parquet", meta)
         figures = _figures(df, front, tmp, meta)
         (tmp / "trade-report.md").write_text(_report(df, front, meta, figures, wrote_parquet, problem))
-        move_into_place(tmp, out, force)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
     return out
 
 

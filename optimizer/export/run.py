@@ -13,6 +13,7 @@ import os
 import shutil
 import tempfile
 import uuid
+from contextlib import contextmanager
 from pathlib import Path
 
 from .. import __version__
@@ -88,17 +89,25 @@ def write_run(plan, problem, out_dir, *, force: bool = False, model=None, create
         If ``out_dir`` exists and ``force`` is false (nothing is written).
     """
     out = Path(out_dir)
+    with staged_folder(out, force) as tmp:
+        _write_contents(plan, problem, tmp, model, created)
+    return out
+
+
+@contextmanager
+def staged_folder(out: Path, force: bool):
+    """A temporary folder beside ``out`` to write into; moved into place whole when the block
+    ends, removed (leaving ``out`` as it was) when the block raises."""
     refuse_existing(out, force)
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
     try:
         os.chmod(tmp, 0o755)
-        _write_contents(plan, problem, tmp, model, created)
+        yield tmp
         move_into_place(tmp, out, force)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    return out
 
 
 def refuse_existing(out: Path, force: bool):
