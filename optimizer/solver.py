@@ -18,6 +18,7 @@
 from __future__ import annotations
 
 import math
+import threading
 import time
 from dataclasses import replace
 
@@ -26,7 +27,7 @@ import numpy as np
 
 from . import __version__
 from .models import build_model
-from .plan import EventRecord, Plan
+from .plan import Plan
 from .problem import Problem
 from .propagate import propagate
 from .seed import circumlunar
@@ -50,8 +51,24 @@ IPOPT_OPTIONS = {
     "ipopt.acceptable_constr_viol_tol": 1e-9,
     "ipopt.mu_strategy": "adaptive",
     "ipopt.nlp_scaling_method": "gradient-based",
+    # At full weight the objective (Δv in units of 100 m/s) overrides the scaled constraints: from
+    # a targeted guess IPOPT first drives the burn to ~0 and then wanders infeasible.  IPOPT
+    # iterations measured (bench_abort.py case; robustness cases 0, 1, 3, 5, 29, 32 of
+    # bench_robustness.py), scaling 1: 43; 264, 105, 78, 516, 205, 600 (failed); 0.3: 45; 68, 77,
+    # 31, 141, 71, 105; 0.1: 71; 35, 39, 61, 53, 108, 105; 0.01: 224; 20, 12, 15, 32, 26, 34.
+    "ipopt.obj_scaling_factor": 0.3,
 }
+#: Cold starts that stall (not infeasible) are retried from the same point with, in turn:
+#: measured on the robustness set (bench_robustness.py), cases 14 and 26 stall at the default
+#: objective weight and converge at 0.03 (31 and 50 iterations); where the exact Hessian stalls,
+#: a quasi-Newton run from the same start often converges.
+RETRIES = (("a lighter objective weight (0.03)", {"ipopt.obj_scaling_factor": 0.03}),
+           ("a limited-memory Hessian", {"ipopt.hessian_approximation": "limited-memory"}))
 WARM_OPTIONS = {
+    # a warm start is near its optimum, with multipliers: the objective keeps its full weight
+    # (measured: the shorter-return cell of tests/test_trade.py::test_duration_axis_is_a_relaxation
+    # converges at 1 and stalls at the cold starts' 0.3 within the cell's 100 iterations)
+    "ipopt.obj_scaling_factor": 1.0,
     "ipopt.warm_start_init_point": "yes",
     "ipopt.warm_start_bound_push": 1e-9,
     "ipopt.warm_start_mult_bound_push": 1e-9,
@@ -333,18 +350,24 @@ def _sample_phases(problem, model, tr, arcs, burns, t_start):
             cuts.append(t_b)
         else:
             cuts.append(peri.t if p.end == "perilune" else arrival_t)
+    states, slens = _sample_cuts(model, tr, cuts, lambda p: arcs[p.index])
+    return states, [dv for _, dv in burns], slens
+
+
+def _sample_cuts(model, tr, cuts, arc_of):
+    """Nodes and lengths of each coast between consecutive ``cuts``, sampled on ``arc_of(phase)``."""
     states, slens = [], []
-    for p, a_arc in zip(tr.phases, arcs):
-        a, b = cuts[p.index], cuts[p.index + 1]
+    for p in tr.phases:
+        a, b, arc = cuts[p.index], cuts[p.index + 1], arc_of(p)
         if b <= a:  # a burn at the very start: an empty coast
-            z = np.r_[a_arc.state(a), a]
+            z = np.r_[arc.state(a), a]
             states.append(np.repeat(z[:, None], tr.segments + 1, axis=1))
             slens.append(0.0)
             continue
-        zs, slen = sample_phase(model, a_arc, a, b, tr.segments)
+        zs, slen = sample_phase(model, arc, a, b, tr.segments)
         states.append(zs)
         slens.append(slen)
-    return states, [dv for _, dv in burns], slens
+    return states, slens
 
 
 def initial_guess(problem, model, tr: Transcription):
@@ -379,12 +402,66 @@ def initial_guess(problem, model, tr: Transcription):
 
 
 # -- solve loop -----------------------------------------------------------------------------------
+def structure_key(tr: Transcription) -> tuple:
+    """What the NLP's expressions depend on (everything else of a problem is a bound): two
+    transcriptions with the same key have the same functions and differ only in bounds and start."""
+    pr = tr.problem
+    inj = None if not is_injection(pr) else (pr.start.inclination_deg, pr.start.altitude_km)
+    obj = pr.objective
+    return (id(tr.model), tr.sc.t_ref, tuple(tr.steps), tr.segments,
+            tuple((b.leg, b.direction) for b in pr.burns), inj, pr.arrival.target,
+            pr.arrival.inclination_deg is not None, obj.kind,
+            obj.mps_per_day if obj.kind == "weighted" else None)
+
+
+class NLPCache:
+    """Built IPOPT solvers, reused by NLPs of the same structure (:func:`structure_key`) and options.
+
+    Building a solver costs ~0.7 s (measured on the demo problems: most of it CasADi generating the
+    derivative functions), more than a warm-started solve; trade-study cells, the zero-burn re-solve
+    and repeated solves share one structure.  Least recently used entries are dropped beyond
+    ``size``; an entry holds its model, so the model's ``id`` in the key cannot be reused.
+    """
+
+    def __init__(self, size: int = 6):
+        self.size = int(size)
+        self._entries = {}  # key -> (model, solver)
+        self.hits = self.misses = 0
+
+    def solver(self, tr: Transcription, opts: dict):
+        key = (structure_key(tr), tuple(sorted((k, repr(v)) for k, v in opts.items())))
+        hit = self._entries.pop(key, None)
+        if hit is not None and hit[0] is tr.model:
+            self.hits += 1
+            self._entries[key] = hit  # most recent last
+            return hit[1]
+        self.misses += 1
+        solver = ca.nlpsol("slingback", "ipopt", tr.nlp, opts)
+        self._entries[key] = (tr.model, solver)
+        while len(self._entries) > self.size:
+            self._entries.pop(next(iter(self._entries)))
+        return solver
+
+
+_LOCAL = threading.local()  # one cache stack per thread: a built solver is never shared by two threads
+
+
+def _active_caches() -> list:
+    """This thread's cache stack; its bottom is the cache ``solve`` uses unless given another."""
+    if not hasattr(_LOCAL, "stack"):
+        _LOCAL.stack = [NLPCache()]
+    return _LOCAL.stack
+
+
 def _solve_nlp(tr: Transcription, x0, lam=None, extra=None):
     opts = dict(IPOPT_OPTIONS)
     opts.update(extra or {})
     if lam is not None:
-        opts.update(WARM_OPTIONS)
-    solver = ca.nlpsol("slingback", "ipopt", tr.nlp, opts)
+        opts = {**opts, **WARM_OPTIONS, **(extra or {})}
+    cache = _active_caches()[-1]
+    t_build = time.perf_counter()
+    solver = cache.solver(tr, opts) if cache else ca.nlpsol("slingback", "ipopt", tr.nlp, opts)
+    t_build = time.perf_counter() - t_build
     args = dict(x0=x0, lbx=tr.lbx, ubx=tr.ubx, lbg=tr.lbg, ubg=tr.ubg)
     if lam is not None:
         args.update(lam_x0=lam[0], lam_g0=lam[1])
@@ -393,7 +470,7 @@ def _solve_nlp(tr: Transcription, x0, lam=None, extra=None):
     wall = time.perf_counter() - t0
     st = solver.stats()
     timing = {k[7:]: round(v, 4) for k, v in st.items() if k.startswith("t_wall_nlp_")}
-    return sol, {"timing_s": timing, "status": st["return_status"], "success": bool(st["success"]), "iterations": int(st["iter_count"]),
+    return sol, {"timing_s": timing, "build_s": round(t_build, 4), "status": st["return_status"], "success": bool(st["success"]), "iterations": int(st["iter_count"]),
                  "wall_s": wall, "objective": float(sol["f"])}
 
 
@@ -496,8 +573,9 @@ def _prune(problem, plan, model, say, ipopt_options):
     small = [j for j, b in enumerate(plan.burns) if b.dv_mps < PRUNE_MPS and problem.burns[j].max_dv_mps > 0]
     if not small:
         return plan
-    zeroed = replace(problem, burns=tuple(replace(b, max_dv_mps=0.0) if j in small else b
-                                          for j, b in enumerate(problem.burns)))
+    # the epoch of a zero burn is fixed where it is: free, its cut could slide (a degenerate direction)
+    zeroed = replace(problem, burns=tuple(replace(b, max_dv_mps=0.0, window=(plan.burns[j].epoch,) * 2)
+                                          if j in small else b for j, b in enumerate(problem.burns)))
     say(f"re-solving with burn(s) {', '.join(str(j + 1) for j in small)} (under {PRUNE_MPS} m/s) fixed at zero")
     trial = solve(zeroed, warm=plan, model=model, progress=say, ipopt_options=ipopt_options)
     if not (trial.verified and trial.total_dv_mps < plan.total_dv_mps):
@@ -508,8 +586,247 @@ def _prune(problem, plan, model, say, ipopt_options):
     return trial
 
 
+# -- several burns: the primary burn alone, then the primer test -------------------------------------
+#: A held-zero burn is proved useless where the primer magnitude |p| stays within 1 + PRIMER_TOL.
+PRIMER_TOL = 1e-3
+#: Size (m/s) of a released burn in the starting point of the full NLP, along the primer direction.
+RELEASE_MPS = 0.5
+
+
+def held_burns(problem) -> list[int]:
+    """Burns solved at zero first in a cold multi-burn solve: every burn after the first usable
+    one (for the Δv objectives; a budget objective, where Δv is not priced, is solved whole)."""
+    if problem.objective.kind not in ("min-dv", "weighted"):
+        return []
+    usable = [j for j, b in enumerate(problem.burns) if b.max_dv_mps > 0]
+    return usable[1:]
+
+
+def primer_scan(tr: Transcription, x, lam_g, lam_x=None) -> list[dict]:
+    """The primer vector at every node of the NLP, from its multipliers.
+
+    With ``L = f + lam_g . g``, an impulse ``delta`` added to the velocity at a node changes the
+    optimal Lagrangian by ``dL/ddelta . delta`` to first order: ``lam`` of the defect that ends at
+    that node (the node is the segment's end plus the impulse), minus ``lam`` of the link for the
+    first node of a coast, or minus ``lam_x`` of the fixed start state (given ``lam_x``).  The impulse also costs ``price * |delta|`` (``price = df/dsigma``), so it
+    pays iff ``|p| = |dL/ddelta| / price > 1``, and then along ``-dL/ddelta``.  This is the primer
+    vector condition of impulsive optimal control (Lawden 1963; Prussing, "Primer vector theory and
+    applications", in Conway (ed.), Spacecraft Trajectory Optimization, 2010), read off the discrete
+    adjoint instead of integrating the costate equations.
+
+    Returns one dict per coast: ``phase``, node ``epochs`` (TDB s), ``magnitude`` |p| and unit
+    ``direction`` (3, N+1) of the impulse that lowers the cost (ECI).
+    """
+    g = np.asarray(lam_g, dtype=float).ravel()
+    x = np.asarray(x, dtype=float).ravel()
+    price = float(ca.Function("price", [tr.nlp["x"]], [ca.gradient(tr.f, tr.sigma[0])])(x))
+    unpacked = tr.unpack(x)
+    out = []
+    for p, zs in zip(tr.phases, unpacked["phases"]):
+        n = tr.segments
+        dldd = np.full((3, n + 1), np.nan)
+        dldd[:, 1:] = g[tr.v.gindex[f"defects{p.index}"]].reshape(7, n, order="F")[3:6]
+        if f"link{p.index}" in tr.v.gindex:
+            dldd[:, 0] = -g[tr.v.gindex[f"link{p.index}"]][3:6]
+        elif lam_x is not None:  # the fixed start state: sensitivity of the optimum to its bounds
+            dldd[:, 0] = -np.asarray(lam_x, dtype=float).ravel()[tr.v.index[f"z{p.index}"]][3:6]
+        mag = np.linalg.norm(dldd, axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out.append({"phase": p.index, "epochs": zs[6].copy(), "magnitude": mag / price,
+                        "direction": -dldd / mag, "gain": -dldd / price, "velocity": zs[3:6].copy()})
+    return out
+
+
+def _release_candidates(problem, epochs, t_peri, scan, j):
+    """The node of largest primer magnitude where burn ``j`` may be placed: inside its window and
+    leg, between the burns of ``epochs`` (full index -> epoch; in the layout's order) at the
+    minimum spacing from them.  Returns (epoch, |p|, unit direction) or None."""
+    b = problem.burns[j]
+    lo, hi = b.window
+    if b.leg == "outbound":
+        hi = min(hi, t_peri)
+    else:
+        lo = max(lo, t_peri)
+    gap = problem.min_burn_spacing_s
+    order = sorted(set(epochs) | {j}, key=lambda q: (problem.burns[q].leg != "outbound", q))
+    k = order.index(j)
+    if k > 0:
+        lo = max(lo, epochs[order[k - 1]] + gap)
+    if k + 1 < len(order):
+        hi = min(hi, epochs[order[k + 1]] - gap)
+    best = None
+    for ph in scan:
+        for t, m, d, gain, vel in zip(ph["epochs"], ph["magnitude"], ph["direction"].T, ph["gain"].T,
+                                      ph["velocity"].T):
+            if b.direction != "free":  # only the component along the burn's fixed direction counts
+                u = (1.0 if b.direction == "along" else -1.0) * vel / np.linalg.norm(vel)
+                m, d = float(gain @ u), u
+            if lo <= t <= hi and np.isfinite(m) and (best is None or m > best[1]):
+                best = (float(t), float(m), d.copy())
+    return best
+
+
+def _path_guess(problem, model, tr, t0, y0, burns, start=None):
+    """Starting point of ``tr`` from the state ``y0`` at ``t0`` and impulsive ``burns``
+    [(epoch, dv km/s)] per burn (a burn at ``t0`` is applied there): the path is propagated
+    through every burn and cut into the transcription's coasts."""
+    t_end = problem.latest_epoch()
+    order = sorted(range(len(burns)), key=lambda j: burns[j][0])
+    pieces, t, y = [], t0, np.asarray(y0, dtype=float).copy()
+    for j in order:
+        tb, dv = burns[j]
+        if tb > t:
+            pieces.append(_coast(model, t, y, tb, events=("perilune",)))
+            y, t = pieces[-1].y[:, -1].copy(), tb
+        y[3:] += dv
+    pieces.append(_coast(model, t, y, t_end, entry_radius=problem.arrival.entry_radius_km))
+    outbound_end = max([burns[j][0] for j, b in enumerate(problem.burns) if b.leg == "outbound"] + [t0])
+
+    def piece_at(tt):
+        return next(a for a in reversed(pieces) if a.t[0] <= tt + 1e-6)
+
+    peri = _first_perilune(piece_at(outbound_end), outbound_end)
+    if peri is None:
+        raise SolveError("the released path has no perilune")
+    last = pieces[-1]
+    name = "entry" if problem.arrival.target == "entry" else "perigee"
+    arrival = next((e for e in last.events if e.t > peri.t and e.name == name), None)
+    arrival_t = arrival.t if arrival is not None else min(peri.t + 3.0 * 86400.0, last.t[-1])
+    cuts = [t0] + [burns[p.burn][0] if p.end == "burn" else peri.t if p.end == "perilune" else arrival_t
+                   for p in tr.phases]
+    if np.any(np.diff(cuts) < 0):
+        raise SolveError("the burns do not fit between the perilune and the arrival")
+    states, slens = _sample_cuts(model, tr, cuts, lambda p: piece_at(cuts[p.index]))
+    return tr.guess_vector(states, [dv for _, dv in burns], slens, start)
+
+
+def _with_zero_burns(problem, model, first, burns, kept, steps, start):
+    """The verified plan ``first`` of the problem without the held burns, as a plan of the whole
+    ``problem``: the held burns at zero at their chosen epochs (the path, and so its verification,
+    is the same), and a primal warm-start point of the whole layout."""
+    from copy import copy
+
+    try:
+        tr = Transcription(problem, model, steps, problem.mesh.segments)
+        x = _path_guess(problem, model, tr, first.start_epoch, first.start_state, burns, start)
+    except SolveError:
+        return None
+    plan = copy(first)
+    plan.burns = [first.burns[kept.index(j)] if j in kept else make_burn(burns[j][0], np.zeros(3), np.r_[1.0, 0.0, 0.0, 0.0, 1.0, 0.0])
+                  for j in range(len(problem.burns))]
+    plan.problem = problem_dict(problem)
+    plan.solver = dict(first.solver)
+    plan.warm = {"x": list(map(float, x)), "lam_x": [], "lam_g": [], "segments": tr.segments, "steps": tr.steps}
+    plan._transcription = None
+    return plan
+
+
+def _solve_staged(problem, model, say, ipopt_options, stages, t_start) -> Plan:
+    """Several burns, cold: solve with one burn alone, test the others (held at zero) with the
+    primer vector, then give the whole layout's answer.
+
+    1. The problem with only the first listed usable burn (the next one if that does not verify;
+       all burns together if none does) is solved and verified.
+    2. :func:`primer_scan` on its multipliers: if no node of a held burn's window has |p| > 1, the
+       answer without it is a KKT point of the whole problem.  The held burn is then returned at
+       zero at its node of largest |p| (the same path, so the same verification), with a primal
+       warm-start point of the whole layout (a zero burn with a free epoch is a degenerate
+       direction of the NLP, its cut can slide: so the whole layout is not re-solved).
+    3. Otherwise a cheaper path uses a held burn: the whole problem is solved from the targeted
+       guess and, if that does not give a cheaper verified plan, from the answer of step 1 with the
+       held burn of largest |p| released at that node along the primer.  The cheapest verified
+       whole-layout plan is returned (the answer of step 1 with zero held burns if nothing beats it).
+
+    Measured on the robustness set (``bench_robustness.py``): solving two burns together from a
+    cold start stalls in most layouts whose second burn is not needed.
+    """
+    usable = [j for j, b in enumerate(problem.burns) if b.max_dv_mps > 0]
+    for alone in usable:  # the first listed usable burn alone, then the next if that fails
+        held = [j for j in usable if j != alone]
+        kept = [j for j in range(len(problem.burns)) if j not in held]
+        reduced = replace(problem, burns=tuple(problem.burns[j] for j in kept))
+        say(f"several burns: solving with burn {alone + 1} alone first "
+            f"(burn(s) {', '.join(str(j + 1) for j in held)} held at zero)")
+        first = solve(reduced, model=model, progress=say, ipopt_options=ipopt_options, _staged=True)
+        tr1 = getattr(first, "_transcription", None)
+        if first.status == "verified" and tr1 is not None:
+            break
+        say(f"burn {alone + 1} alone: {first.status}")
+    else:
+        say("no burn alone gives a verified plan; solving all burns together")
+        return solve(problem, model=model, progress=say, ipopt_options=ipopt_options, _staged=True)
+    scan = primer_scan(tr1, first.warm["x"], first.warm["lam_g"])
+    epochs = {j: first.burns[i].epoch for i, j in enumerate(kept)}
+    t_peri = first.events[0].epoch
+    picks = {j: _release_candidates(problem, epochs, t_peri, scan, j) for j in held}
+    record = {"held_burns": [j + 1 for j in held], "tolerance": PRIMER_TOL,
+              "max_primer": {str(j + 1): (None if c is None else round(c[1], 6)) for j, c in picks.items()},
+              "without_held_dv_mps": first.total_dv_mps}
+    start = {k: float(first.warm["x"][tr1.v.index[k].start]) for k in ("tau_injection", "raan", "arg_latitude")
+             if k in tr1.v.index}
+    burns = [None] * len(problem.burns)
+    for i, j in enumerate(kept):
+        burns[j] = (first.burns[i].epoch, np.asarray(first.burns[i].dv, dtype=float))
+    for j in held:  # a zero burn at its node of largest |p| (window middle when no node fits)
+        lo, hi = problem.burns[j].window
+        burns[j] = (picks[j][0] if picks[j] is not None else 0.5 * (lo + hi), np.zeros(3))
+    steps = [max(first.warm["steps"])] * (len(problem.burns) + 2)  # the answer's finest mesh, every coast
+
+    def whole(prob, burns_, label):
+        try:
+            tr = Transcription(prob, model, steps, problem.mesh.segments)
+            x0 = _path_guess(prob, model, tr, first.start_epoch, first.start_state, burns_, start)
+        except SolveError as exc:
+            say(f"{label}: no starting point ({exc})")
+            return None
+        plan = _solve_loop(prob, model, tr, x0, None, say, ipopt_options, stages, t_start)
+        plan.problem = problem_dict(problem)
+        return plan
+
+    usable = {j: c for j, c in picks.items() if c is not None and c[1] > 1.0 + PRIMER_TOL}
+    candidates = []
+    if usable:
+        j, (t_rel, p_max, direction) = max(usable.items(), key=lambda kv: kv[1][1])
+        say(f"primer test: |p| = {p_max:.4f} > 1 for burn {j + 1} at {t_rel - first.start_epoch:.0f} s from "
+            "the start: a cheaper path uses it; solving all burns together")
+        # measured: from the targeted cold guess the whole problem converges where a small burn
+        # released along the primer from the one-burn answer stalls (|p| = 19 case of test_primer)
+        direct = solve(problem, model=model, progress=say, ipopt_options=ipopt_options, _staged=True)
+        if direct.verified and direct.total_dv_mps < first.total_dv_mps:
+            direct.solver["primer"] = {**record, "result": f"|p| = {p_max:.4f} > 1 for burn {j + 1}; "
+                                       "solved all burns together"}
+            candidates.append(direct)
+        else:
+            say(f"that solve ended {direct.status}; releasing burn {j + 1} at the primer's peak instead")
+            trial = list(burns)
+            trial[j] = (t_rel, direction * RELEASE_MPS / 1000.0)
+            released = whole(problem, trial, "release")
+            if released is not None and released.verified and released.total_dv_mps < first.total_dv_mps:
+                released.solver["primer"] = {**record, "result": f"burn {j + 1} released at |p| = {p_max:.4f}"}
+                candidates.append(released)
+    else:
+        say("primer test: no held burn can lower the cost (max |p| "
+            f"{max((c[1] for c in picks.values() if c is not None), default=0.0):.4f} <= 1)")
+    if not candidates or candidates[0].total_dv_mps > first.total_dv_mps:
+        note = ("held burns proved useless (|p| <= 1 + tol in their windows)" if not usable else
+                "|p| > 1 for a held burn, but neither the whole solve nor the release was cheaper; held "
+                "burn(s) kept at zero (a cheaper path may exist)")
+        plan = _with_zero_burns(problem, model, first, burns, kept, steps, start)
+        if plan is not None:
+            plan.solver["primer"] = {**record, "result": note}
+            candidates.append(plan)
+    if not candidates:
+        say("the staged solve did not give a verified whole-layout plan; solving all burns together")
+        return solve(problem, model=model, progress=say, ipopt_options=ipopt_options, _staged=True)
+    best = min(candidates, key=lambda pl: pl.total_dv_mps)
+    best.solver["stages"] = list(best.solver.get("stages", [])) + [
+        {"stage": "without the held burns", "status": first.status, "total_dv_mps": first.total_dv_mps,
+         "iterations": first.solver.get("iterations")}]
+    return best
+
+
 def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=None,
-          ipopt_options: dict | None = None) -> Plan:
+          ipopt_options: dict | None = None, cache=None, _staged: bool = False) -> Plan:
     """Minimum-Δv (or other objective) free return for ``problem``, verified independently.
 
     Parameters
@@ -523,12 +840,26 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
         Prebuilt model (must cover the problem's span); built from ``problem.model`` otherwise.
     ipopt_options : dict, optional
         Extra CasADi/IPOPT options (e.g. ``{"ipopt.print_level": 5}`` to watch the iterations).
+    cache : NLPCache or False, optional
+        Built solvers to reuse (default: one cache per thread, kept between calls); ``False``
+        builds every solver afresh.
 
     Returns
     -------
     Plan
         ``status`` is ``"verified"``, ``"unverified"``, ``"infeasible"`` or ``"failed"``.
     """
+    if cache is None:
+        return _solve_impl(problem, warm, progress, model, ipopt_options, _staged)
+    stack = _active_caches()
+    stack.append(cache)
+    try:
+        return _solve_impl(problem, warm, progress, model, ipopt_options, _staged)
+    finally:
+        stack.pop()
+
+
+def _solve_impl(problem, warm, progress, model, ipopt_options, _staged) -> Plan:
     say = progress or (lambda msg: None)
     t_start = time.perf_counter()
     stages = []
@@ -536,6 +867,8 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
         warm, stages = _continuation(problem, say, ipopt_options)
     if model is None:
         model = build_model(problem.model, *model_span(problem))
+    if warm is None and not _staged and held_burns(problem):
+        return _solve_staged(problem, model, say, ipopt_options, stages, t_start)
     steps = [problem.mesh.steps] * (len(problem.burns) + 2)
     lam = None
     if warm is not None and warm.warm.get("x") and warm.warm.get("segments") == problem.mesh.segments \
@@ -545,7 +878,8 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
         x0 = np.asarray(warm.warm["x"], dtype=float)
         if x0.size != tr.x0.size:
             raise SolveError("the warm-start plan does not match this problem's layout")
-        if warm.model.get("name") == problem.model.kind:  # same physics: multipliers carry over too
+        if warm.model.get("name") == problem.model.kind and len(warm.warm.get("lam_x", [])) == x0.size:
+            # same physics: multipliers carry over too
             lam = (np.asarray(warm.warm["lam_x"]), np.asarray(warm.warm["lam_g"]))
         say("warm start from the given plan" + ("" if lam is not None else " (primal point only)"))
     elif is_injection(problem) and problem.burns[0].direction == "free":
@@ -566,21 +900,24 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
         say("initial guess: targeted coast")
         states, dvs, slens, start = initial_guess(problem, model, tr)
         x0 = tr.guess_vector(states, dvs, slens, start)
+    return _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start)
+
+
+def _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start) -> Plan:
+    """NLP, verification and per-coast refinement from the starting point ``x0`` of ``tr``."""
     log = []
     for attempt in range(problem.mesh.max_refinements + 1):
         say(f"NLP: {tr.v.n} variables, {tr.v.ng} constraints, steps per coast {tr.steps}")
         sol, rec = _solve_nlp(tr, x0, lam, ipopt_options)
         rec["build_and_solve_s"] = time.perf_counter() - t_start
         log.append(rec)
-        if not rec["success"] and "Infeasible" not in rec["status"] and lam is None \
-                and "ipopt.hessian_approximation" not in (ipopt_options or {}):
-            # measured on the robustness set: where the exact Hessian stalls, a quasi-Newton run
-            # from the same start often converges (and the reverse), so try it before giving up
-            say(f"IPOPT: {rec['status']} after {rec['iterations']} iterations; retrying with a "
-                "limited-memory Hessian")
-            sol, rec = _solve_nlp(tr, x0, None, {**(ipopt_options or {}),
-                                                 "ipopt.hessian_approximation": "limited-memory"})
-            rec["hessian"] = "limited-memory"
+        for label, retry in RETRIES:
+            if rec["success"] or "Infeasible" in rec["status"] or lam is not None \
+                    or set(retry) & set(ipopt_options or {}):
+                break
+            say(f"IPOPT: {rec['status']} after {rec['iterations']} iterations; retrying with {label}")
+            sol, rec = _solve_nlp(tr, x0, None, {**(ipopt_options or {}), **retry})
+            rec["retry"] = label
             rec["build_and_solve_s"] = time.perf_counter() - t_start
             log.append(rec)
         x = np.asarray(sol["x"]).ravel()
@@ -603,6 +940,7 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
             say(f"verified: total Δv {sum(b.dv_mps for b in burns):.3f} m/s")
             log[-1]["end_to_end_s"] = time.perf_counter() - t_start
             plan = _plan(problem, model, tr, unpacked, "verified", "", ver, log, x, lam, stages)
+            plan._transcription = tr  # kept for the primer test of a staged solve (not serialised)
             return _prune(problem, plan, model, say, ipopt_options)
         say("verification failed: " + "; ".join(ver.violations))
         if attempt == problem.mesh.max_refinements:
