@@ -69,11 +69,18 @@ DEFAULT_MAX_ITER = 100
 #: IPOPT options of a cell (over the solver's own): optimality tolerance 1e-7 instead of 1e-9; the
 #: constraint tolerances, and so the verification, are unchanged.  Measured on 24 cells of the
 #: benchmark grid: 39 % fewer iterations, every Δv the same to 1e-4 m/s.  The reference and
-#: :func:`best_plan` are solved at the solver's full tolerance.
-CELL_IPOPT_OPTIONS = {"ipopt.tol": 1e-7, "ipopt.acceptable_tol": 1e-6}
+#: :func:`best_plan` are solved at the solver's full tolerance.  A cell starts warm, next to its
+#: optimum, where a limited-memory Hessian needs few iterations and each costs a fraction of an
+#: exact one.  Measured on the 12 x 12 demo-trade grid (``bench_trade.py --problem
+#: problems/demo-trade.toml``): wall 182 s exact, 63 s limited-memory; the same 96 cells verified;
+#: total Δv equal to 0.04 % (the limited-memory answers lower by up to 3.5 mm/s, higher by 1e-8 m/s).
+CELL_IPOPT_OPTIONS = {"ipopt.tol": 1e-7, "ipopt.acceptable_tol": 1e-6,
+                      "ipopt.hessian_approximation": "limited-memory"}
 #: Share of the cap given to a first attempt whose neighbour on the continuation tree failed (it
 #: starts further away, usually inside a region with no solution; retries get the full cap).
 FAR_CAP_SHARE = 0.25
+#: Share of the cap for the exact-Hessian attempt after a stalled limited-memory one.
+FALLBACK_CAP_SHARE = 0.4
 CELL_FORMAT, SWEEP_FORMAT, FORMAT_VERSION = "slingback-trade-cell", "slingback-trade-sweep", 1
 
 COLUMNS = ["row", "col", "cell", "burn_epoch_tdb", "burn_epoch_tdb_s", "arrival_grid_epoch_tdb_s",
@@ -201,7 +208,8 @@ def _record(plan: Plan, problem: Problem, burn_index: int, wall: float, cpu: flo
     return rec
 
 
-def _solve_task(problem: Problem, warm: dict | None, model, max_iter: int, burn_index: int, cell: bool = True):
+def _solve_task(problem: Problem, warm: dict | None, model, max_iter: int, burn_index: int, cell: bool = True,
+                fallback: bool = True):
     """Solve one cell (runs in a worker).  Returns (record dict, warm dict or None).
 
     ``model=None`` lets ``solve`` build its own (and run the problem's model continuation);
@@ -209,10 +217,21 @@ def _solve_task(problem: Problem, warm: dict | None, model, max_iter: int, burn_
     from .solver import solve  # CasADi is loaded in the worker, not at import of this module
 
     t0, c0 = time.perf_counter(), time.process_time()
+    model = _interned(model)
     options = {**(CELL_IPOPT_OPTIONS if cell else {}), "ipopt.max_iter": int(max_iter)}
     try:
         plan = solve(problem, warm=_warm_stub(warm) if warm else None, model=model, ipopt_options=options,
                      **_cache_kwargs(solve))
+        if cell and fallback and not plan.verified and "Maximum_Iterations" in plan.reason and plan.warm.get("x"):
+            # the limited-memory Hessian can stall on a cell far from its neighbour: the exact
+            # Hessian goes on from where it stopped (measured on the 0.3 d arrival step of
+            # tests/test_trade.py: limited-memory stalls at 100 iterations; exact from the neighbour
+            # 50-57, from the stalled point 25-37, hence the cap FALLBACK_CAP_SHARE of the cell's)
+            attempts = plan.solver.get("attempts", [])
+            options.pop("ipopt.hessian_approximation", None)
+            options["ipopt.max_iter"] = max(5, int(max_iter * FALLBACK_CAP_SHARE))
+            plan = solve(problem, warm=plan, model=model, ipopt_options=options, **_cache_kwargs(solve))
+            plan.solver["attempts"] = attempts + plan.solver.get("attempts", [])
     except Exception as exc:  # a cell that cannot even be set up is a failed cell, not a failed sweep
         rec = _nan_record()
         rec.update(status="failed", reason=f"{type(exc).__name__}: {exc}", iterations=0,
@@ -225,6 +244,25 @@ def _solve_task(problem: Problem, warm: dict | None, model, max_iter: int, burn_
 
 
 _CACHE = []  # per worker process: the solver's NLP cache, when it offers one
+_MODELS = {}  # per worker process: one model object per distinct model (fingerprint -> model)
+
+
+def _interned(model):
+    """The worker's own copy of ``model``: every task brings a fresh unpickled copy, and a built
+    solver can be reused only with the very model object it was built on."""
+    if model is None:
+        return None
+    import pickle
+
+    key = hashlib.sha256(pickle.dumps(model, protocol=4)).hexdigest()
+    return _MODELS.setdefault(key, model)
+
+
+def _worker_threads(threads: int) -> None:
+    """Pool initializer: threads per CasADi map in this worker (workers x threads = cores)."""
+    from . import transcription
+
+    transcription.MAP_THREADS = max(1, int(threads))
 
 
 def _cache_kwargs(solve) -> dict:
@@ -270,7 +308,10 @@ class _Processes:
     """A local process pool (spawned, so no thread state of this process is inherited)."""
 
     def __init__(self, workers):
-        self.pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
+        # the cores are shared out: a worker's CasADi map gets cores // workers threads
+        threads = max(1, (os.cpu_count() or 1) // workers)
+        self.pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
+                                           initializer=_worker_threads, initargs=(threads,))
 
     def submit(self, fn, *args):
         return self.pool.submit(fn, *args)
@@ -572,7 +613,7 @@ def sweep(problem: Problem, burn_epochs, arrival_epochs=None, *, return_duration
             # started from further away; a smaller cap (a feasible cell lost this way is retried
             # from any verified neighbour at the full cap)
             cap = max_iter if par is None or results[par]["warm"] is not None else _far_cap(max_iter)
-            fut = ex.submit(_solve_task, problems[key], warm, model, cap, burn_index)
+            fut = ex.submit(_solve_task, problems[key], warm, model, cap, burn_index, True, cap == max_iter)
             pending[fut] = (key, src)
 
         report("solve", len(results), len(problems), "")
