@@ -211,6 +211,13 @@ class Transcription:
         self._segments[steps] = fn
         return fn
 
+    def _mapped(self, steps: int) -> ca.Function:
+        """The segment function of ``steps`` mapped over a coast's segments (one per step count)."""
+        key = ("map", steps)
+        if key not in self._segments:
+            self._segments[key] = self.segment_function(steps).map(self.segments, MAP_MODE, MAP_THREADS)
+        return self._segments[key]
+
     # -- building blocks -----------------------------------------------------------------------
     def _add_start(self, v):
         """The start: a fixed state, or a point of the parking orbit at a free epoch and node."""
@@ -254,7 +261,7 @@ class Transcription:
         for p in self.phases:
             nodes = v.var(f"z{p.index}", (7, n + 1))
             slen = v.var(f"S{p.index}", (1, 1), 0.0, 40.0, 1.0)
-            seg = self.segment_function(self.steps[p.index]).map(n, MAP_MODE, MAP_THREADS)
+            seg = self._mapped(self.steps[p.index])
             z_end = seg(nodes[:, :n], ca.repmat(slen / n, 1, n))
             v.con(f"defects{p.index}", z_end - nodes[:, 1:], 0.0, 0.0)
             self.nodes.append(nodes)
