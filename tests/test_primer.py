@@ -74,6 +74,11 @@ def test_unhelpful_second_burn_is_proved_useless(one_burn, natural, model):
     assert plan2.total_dv_mps == pytest.approx(plan1.total_dv_mps, rel=1e-4)
     rec = plan2.solver["primer"]
     assert rec["max_primer"]["2"] <= 1.0 + rec["tolerance"]
+    # the report says what the primer test found
+    from optimizer.export.report import report_markdown
+
+    text = report_markdown(plan2, two)
+    assert "## Held burns (primer test)" in text and f"burn 2: {rec['max_primer']['2']:.4f}" in text
     # and the plan warm-starts the whole two-burn problem
     again = solve(two, warm=plan2, model=model)
     assert again.verified and again.total_dv_mps <= plan2.total_dv_mps * (1 + 1e-4)

@@ -233,6 +233,15 @@ def report_markdown(plan, problem, *, sampled=None, figures=(), files=(), notes=
         if v.violations:
             L += ["Violations:", ""] + [f"- {x}" for x in v.violations] + [""]
 
+    pr = plan.solver.get("primer") if plan.solver else None
+    if pr:
+        peaks = ", ".join(f"burn {k}: {'—' if v is None else f'{v:.4f}'}" for k, v in pr.get("max_primer", {}).items())
+        L += ["## Held burns (primer test)", "",
+              f"Solved first without burn(s) {', '.join(map(str, pr.get('held_burns', [])))} "
+              f"(total Δv {pr.get('without_held_dv_mps', float('nan')):.4f} m/s); largest primer magnitude "
+              f"|p| in each held burn's window: {peaks} (|p| <= 1 + {pr.get('tolerance')}: the burn cannot "
+              f"lower the cost). Outcome: {pr.get('result')}.", ""]
+
     L += ["## Solver record", ""]
     L += _table(["key", "value"], [[k, _short_json(val)] for k, val in plan.solver.items()]) \
         if plan.solver else ["No solver record.", ""]
