@@ -27,7 +27,7 @@ import numpy as np
 
 from . import __version__
 from .models import build_model
-from .plan import Plan
+from .plan import Burn, Plan
 from .problem import Problem
 from .propagate import propagate
 from .seed import circumlunar
@@ -162,7 +162,7 @@ class _Encounter:
         return self._h_earth
 
 
-def _newton(measure, goal, weight, basis, c0, iters, lower=None):
+def _newton(measure, goal, weight, c0, iters, lower=None):
     """Damped least-norm Newton on ``measure(c) = goal`` in the burn coordinates ``c``.
 
     Returns (c, converged).  ``lower`` bounds the coordinates (fixed-direction burn sizes >= 0).
@@ -233,8 +233,8 @@ def linear_targeting(problem, model, t_burn, y_burn, t_end, direction="free", ca
         e = encounter(c)
         return None if e is None else np.array([e.h_moon])
 
-    c, _ = _newton(perilune_only, np.array([h_moon_goal]), np.array([w_moon]), basis,
-                   np.zeros(basis.shape[1]), iters, lower)
+    c, _ = _newton(perilune_only, np.array([h_moon_goal]), np.array([w_moon]), np.zeros(basis.shape[1]),
+                   iters, lower)
     # perilune and return together: each step is the least-norm change that meets the linearised
     # perilune and puts |h_earth| on its target (a small non-convex problem, solved from several
     # directions so that the return may pass either side of Earth)
@@ -454,10 +454,7 @@ def _active_caches() -> list:
 
 
 def _solve_nlp(tr: Transcription, x0, lam=None, extra=None):
-    opts = dict(IPOPT_OPTIONS)
-    opts.update(extra or {})
-    if lam is not None:
-        opts = {**opts, **WARM_OPTIONS, **(extra or {})}
+    opts = {**IPOPT_OPTIONS, **(WARM_OPTIONS if lam is not None else {}), **(extra or {})}
     cache = _active_caches()[-1]
     t_build = time.perf_counter()
     solver = cache.solver(tr, opts) if cache else ca.nlpsol("slingback", "ipopt", tr.nlp, opts)
@@ -593,13 +590,17 @@ PRIMER_TOL = 1e-3
 RELEASE_MPS = 0.5
 
 
+def _usable_burns(problem) -> list[int]:
+    """Indices of the burns allowed a non-zero size."""
+    return [j for j, b in enumerate(problem.burns) if b.max_dv_mps > 0]
+
+
 def held_burns(problem) -> list[int]:
     """Burns solved at zero first in a cold multi-burn solve: every burn after the first usable
     one (for the Δv objectives; a budget objective, where Δv is not priced, is solved whole)."""
     if problem.objective.kind not in ("min-dv", "weighted"):
         return []
-    usable = [j for j, b in enumerate(problem.burns) if b.max_dv_mps > 0]
-    return usable[1:]
+    return _usable_burns(problem)[1:]
 
 
 def primer_scan(tr: Transcription, x, lam_g, lam_x=None) -> list[dict]:
@@ -712,7 +713,7 @@ def _with_zero_burns(problem, model, first, burns, kept, steps, start):
     except SolveError:
         return None
     plan = copy(first)
-    plan.burns = [first.burns[kept.index(j)] if j in kept else make_burn(burns[j][0], np.zeros(3), np.r_[1.0, 0.0, 0.0, 0.0, 1.0, 0.0])
+    plan.burns = [first.burns[kept.index(j)] if j in kept else Burn(float(burns[j][0]), (0.0,) * 3, (0.0,) * 3)
                   for j in range(len(problem.burns))]
     plan.problem = problem_dict(problem)
     plan.solver = dict(first.solver)
@@ -740,7 +741,7 @@ def _solve_staged(problem, model, say, ipopt_options, stages, t_start) -> Plan:
     Measured on the robustness set (``bench_robustness.py``): solving two burns together from a
     cold start stalls in most layouts whose second burn is not needed.
     """
-    usable = [j for j, b in enumerate(problem.burns) if b.max_dv_mps > 0]
+    usable = _usable_burns(problem)
     for alone in usable:  # the first listed usable burn alone, then the next if that fails
         held = [j for j in usable if j != alone]
         kept = [j for j in range(len(problem.burns)) if j not in held]
@@ -772,21 +773,10 @@ def _solve_staged(problem, model, say, ipopt_options, stages, t_start) -> Plan:
         burns[j] = (picks[j][0] if picks[j] is not None else 0.5 * (lo + hi), np.zeros(3))
     steps = [max(first.warm["steps"])] * (len(problem.burns) + 2)  # the answer's finest mesh, every coast
 
-    def whole(prob, burns_, label):
-        try:
-            tr = Transcription(prob, model, steps, problem.mesh.segments)
-            x0 = _path_guess(prob, model, tr, first.start_epoch, first.start_state, burns_, start)
-        except SolveError as exc:
-            say(f"{label}: no starting point ({exc})")
-            return None
-        plan = _solve_loop(prob, model, tr, x0, None, say, ipopt_options, stages, t_start)
-        plan.problem = problem_dict(problem)
-        return plan
-
-    usable = {j: c for j, c in picks.items() if c is not None and c[1] > 1.0 + PRIMER_TOL}
-    candidates = []
-    if usable:
-        j, (t_rel, p_max, direction) = max(usable.items(), key=lambda kv: kv[1][1])
+    helpful = {j: c for j, c in picks.items() if c is not None and c[1] > 1.0 + PRIMER_TOL}
+    candidates, direct = [], None
+    if helpful:
+        j, (t_rel, p_max, direction) = max(helpful.items(), key=lambda kv: kv[1][1])
         say(f"primer test: |p| = {p_max:.4f} > 1 for burn {j + 1} at {t_rel - first.start_epoch:.0f} s from "
             "the start: a cheaper path uses it; solving all burns together")
         # measured: from the targeted cold guess the whole problem converges where a small burn
@@ -800,7 +790,13 @@ def _solve_staged(problem, model, say, ipopt_options, stages, t_start) -> Plan:
             say(f"that solve ended {direct.status}; releasing burn {j + 1} at the primer's peak instead")
             trial = list(burns)
             trial[j] = (t_rel, direction * RELEASE_MPS / 1000.0)
-            released = whole(problem, trial, "release")
+            released = None
+            try:
+                tr = Transcription(problem, model, steps, problem.mesh.segments)
+                x0 = _path_guess(problem, model, tr, first.start_epoch, first.start_state, trial, start)
+                released = _solve_loop(problem, model, tr, x0, None, say, ipopt_options, stages, t_start)
+            except SolveError as exc:
+                say(f"release: no starting point ({exc})")
             if released is not None and released.verified and released.total_dv_mps < first.total_dv_mps:
                 released.solver["primer"] = {**record, "result": f"burn {j + 1} released at |p| = {p_max:.4f}"}
                 candidates.append(released)
@@ -808,7 +804,7 @@ def _solve_staged(problem, model, say, ipopt_options, stages, t_start) -> Plan:
         say("primer test: no held burn can lower the cost (max |p| "
             f"{max((c[1] for c in picks.values() if c is not None), default=0.0):.4f} <= 1)")
     if not candidates or candidates[0].total_dv_mps > first.total_dv_mps:
-        note = ("held burns proved useless (|p| <= 1 + tol in their windows)" if not usable else
+        note = ("held burns proved useless (|p| <= 1 + tol in their windows)" if not helpful else
                 "|p| > 1 for a held burn, but neither the whole solve nor the release was cheaper; held "
                 "burn(s) kept at zero (a cheaper path may exist)")
         plan = _with_zero_burns(problem, model, first, burns, kept, steps, start)
@@ -816,6 +812,8 @@ def _solve_staged(problem, model, say, ipopt_options, stages, t_start) -> Plan:
             plan.solver["primer"] = {**record, "result": note}
             candidates.append(plan)
     if not candidates:
+        if direct is not None:  # the whole problem was solved already (above)
+            return direct
         say("the staged solve did not give a verified whole-layout plan; solving all burns together")
         return solve(problem, model=model, progress=say, ipopt_options=ipopt_options, _staged=True)
     best = min(candidates, key=lambda pl: pl.total_dv_mps)

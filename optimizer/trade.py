@@ -220,8 +220,9 @@ def _solve_task(problem: Problem, warm: dict | None, model, max_iter: int, burn_
     model = _interned(model)
     options = {**(CELL_IPOPT_OPTIONS if cell else {}), "ipopt.max_iter": int(max_iter)}
     try:
-        plan = solve(problem, warm=_warm_stub(warm) if warm else None, model=model, ipopt_options=options,
-                     **_cache_kwargs(solve))
+        # cells share one NLP structure (only bounds change): the solver's own per-thread cache
+        # reuses one built IPOPT solver for them, given the same (interned) model object
+        plan = solve(problem, warm=_warm_stub(warm) if warm else None, model=model, ipopt_options=options)
         if cell and fallback and not plan.verified and "Maximum_Iterations" in plan.reason and plan.warm.get("x"):
             # the limited-memory Hessian can stall on a cell far from its neighbour: the exact
             # Hessian goes on from where it stopped (measured on the 0.3 d arrival step of
@@ -230,7 +231,7 @@ def _solve_task(problem: Problem, warm: dict | None, model, max_iter: int, burn_
             attempts = plan.solver.get("attempts", [])
             options.pop("ipopt.hessian_approximation", None)
             options["ipopt.max_iter"] = max(5, int(max_iter * FALLBACK_CAP_SHARE))
-            plan = solve(problem, warm=plan, model=model, ipopt_options=options, **_cache_kwargs(solve))
+            plan = solve(problem, warm=plan, model=model, ipopt_options=options)
             plan.solver["attempts"] = attempts + plan.solver.get("attempts", [])
     except Exception as exc:  # a cell that cannot even be set up is a failed cell, not a failed sweep
         rec = _nan_record()
@@ -243,7 +244,6 @@ def _solve_task(problem: Problem, warm: dict | None, model, max_iter: int, burn_
     return rec, (_warm_of(plan) if plan.verified else None)
 
 
-_CACHE = []  # per worker process: the solver's NLP cache, when it offers one
 _MODELS = {}  # per worker process: one model object per distinct model (fingerprint -> model)
 
 
@@ -263,19 +263,6 @@ def _worker_threads(threads: int) -> None:
     from . import transcription
 
     transcription.MAP_THREADS = max(1, int(threads))
-
-
-def _cache_kwargs(solve) -> dict:
-    """``cache=`` for ``solve`` if it takes one (cells share one NLP structure: only bounds change,
-    so one IPOPT solver per layout serves a whole sweep)."""
-    if not _CACHE:
-        import inspect
-
-        from . import solver
-
-        ok = "cache" in inspect.signature(solve).parameters and hasattr(solver, "NLPCache")
-        _CACHE.append(solver.NLPCache() if ok else None)
-    return {"cache": _CACHE[0]} if _CACHE[0] is not None else {}
 
 
 def _warm_of(plan: Plan) -> dict:
