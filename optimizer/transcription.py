@@ -40,6 +40,7 @@ import numpy as np
 from scipy.integrate._ivp import dop853_coefficients as _dop853
 
 from .constants import EARTH_MOON_DISTANCE, GM_EARTH, GM_MOON
+from .models.base import inv_cube_casadi
 
 # 12-stage, 8th-order explicit Runge-Kutta weights (Dormand & Prince; Hairer, Norsett & Wanner,
 # Solving ODEs I, 2nd ed., section II.10), as scipy ships them.
@@ -147,6 +148,7 @@ class Transcription:
         self.segments = int(segments)
         self.sc = Scaling.earth_moon(problem.start_epoch)
         self._segments = {}
+        self._shots = []  # (phase index, node block, s-length, stand-in W of the segment ends)
         self._body_functions()
         v = self.v = _Vars()
         self._add_start(v)
@@ -158,7 +160,11 @@ class Transcription:
         self._add_clearance(v)
         self._add_spacing(v)
         self._set_objective(v)
-        self.nlp = {"x": ca.vertcat(*v.x), "f": self.f, "g": ca.vertcat(*v.g)}
+        x, self._g_w = ca.vertcat(*v.x), ca.vertcat(*v.g)
+        ends = [self._mapped(self.steps[k])(nodes[:, :-1], ca.repmat(slen / self.segments, 1, self.segments))
+                for k, nodes, slen, _ in self._shots]
+        g = ca.substitute([self._g_w], [w for *_, w in self._shots], ends)[0]
+        self.nlp = {"x": x, "f": self.f, "g": g}
         self.lbx, self.ubx = np.concatenate(v.lbx), np.concatenate(v.ubx)
         self.x0 = np.concatenate(v.x0)
         self.lbg, self.ubg = np.concatenate(v.lbg), np.concatenate(v.ubg)
@@ -176,11 +182,12 @@ class Transcription:
         z = ca.SX.sym("z", 7)
         r, vel, tz = z[0:3], z[3:6], z[6]
         t_phys = sc.t_ref + sc.tu * tz
-        acc = model.acceleration_casadi(t_phys, r * sc.lu, vel * sc.vu) * (sc.tu**2 / sc.lu)
-        mu_e = model.gm_earth * sc.tu**2 / sc.lu**3
-        mu_m = model.gm_moon * sc.tu**2 / sc.lu**3
-        dm = r - model.moon_position_casadi(t_phys) / sc.lu
-        omega2 = mu_e / ca.power(ca.sumsqr(r), 1.5) + mu_m / ca.power(ca.sumsqr(dm), 1.5)
+        r_km = r * sc.lu
+        acc = model.acceleration_casadi(t_phys, r_km, vel * sc.vu) * (sc.tu**2 / sc.lu)
+        # omega^2 from the same separations as the acceleration (physical units, then scaled), so
+        # that the common-subexpression pass below evaluates each distance once
+        dm = r_km - model.moon_position_casadi(t_phys)
+        omega2 = (model.gm_earth * inv_cube_casadi(r_km) + model.gm_moon * inv_cube_casadi(dm)) * sc.tu**2
         dtds = 1.0 / ca.sqrt(omega2)
         self.dtds_fn = ca.Function("dtds", [z], [dtds])
         rhs = ca.Function("rhs", [z], [ca.cse(ca.vertcat(vel * dtds, acc * dtds, dtds))])
@@ -261,9 +268,12 @@ class Transcription:
         for p in self.phases:
             nodes = v.var(f"z{p.index}", (7, n + 1))
             slen = v.var(f"S{p.index}", (1, 1), 0.0, 40.0, 1.0)
-            seg = self._mapped(self.steps[p.index])
-            z_end = seg(nodes[:, :n], ca.repmat(slen / n, 1, n))
-            v.con(f"defects{p.index}", z_end - nodes[:, 1:], 0.0, 0.0)
+            # The segment ends enter the constraints through a stand-in symbol W (replaced by the
+            # mapped segment function below): the defects are linear in W, which is what lets
+            # :meth:`derivative_functions` assemble exact derivatives segment by segment.
+            w = ca.MX.sym(f"W{p.index}", 7, n)
+            v.con(f"defects{p.index}", w - nodes[:, 1:], 0.0, 0.0)
+            self._shots.append((p.index, nodes, slen, w))
             self.nodes.append(nodes)
             self.slen.append(slen)
         # epochs stay inside the ephemeris fit
@@ -390,6 +400,113 @@ class Transcription:
         else:
             raise ValueError(f"unknown objective {obj.kind!r}")
         self.total_dv_mps = total
+
+    # -- exact derivatives, assembled per segment ----------------------------------------------
+    def _segment_derivatives(self, steps: int):
+        """Mapped SX functions of one coast's segments: (ends, Jacobians 7 x 8) and the upper
+        triangle of the Hessian of ``mu' segment(z, h)`` over ``(z, h)``."""
+        key = ("derivatives", steps)
+        if key not in self._segments:
+            seg = self.segment_function(steps)
+            z, h, mu = ca.SX.sym("z", 7), ca.SX.sym("h"), ca.SX.sym("mu", 7)
+            zh = ca.vertcat(z, h)
+            end = seg(z, h)
+            jac = ca.Function(f"segment{steps}_jac", [z, h], [end, ca.jacobian(end, zh)])
+            hess = ca.Function(f"segment{steps}_hess", [z, h, mu],
+                               [ca.triu(ca.hessian(ca.dot(mu, end), zh)[0])])
+            self._segments[key] = (jac.map(self.segments, MAP_MODE, MAP_THREADS),
+                                   hess.map(self.segments, MAP_MODE, MAP_THREADS))
+        return self._segments[key]
+
+    def _x_index(self, k: int, a: int, seg: int) -> int:
+        """Variable index of input ``a`` (0-6 node state, 7 the step) of segment ``seg`` of phase ``k``."""
+        if a == 7:
+            return self.v.index[f"S{k}"].start
+        return self.v.index[f"z{k}"].start + 7 * seg + a
+
+    @staticmethod
+    def _assemble(shape, parts, triu=False):
+        """Sparse sum of MX nonzero vectors.  ``parts``: (values (MX column), rows, cols, weights),
+        one entry of rows/cols/weights per value.  Returns an MX of ``shape`` whose nonzeros are
+        the sums over equal (row, col); with ``triu`` pairs below the diagonal are mirrored."""
+        rows = np.concatenate([np.asarray(r, dtype=np.int64) for _, r, _, _ in parts])
+        cols = np.concatenate([np.asarray(c, dtype=np.int64) for _, _, c, _ in parts])
+        if triu:
+            rows, cols = np.minimum(rows, cols), np.maximum(rows, cols)
+        keys = cols * shape[0] + rows  # column-major order of the nonzeros
+        uniq, where = np.unique(keys, return_inverse=True)
+        sp_rows, sp_cols = (uniq % shape[0]).astype(int), (uniq // shape[0]).astype(int)
+        colind = np.searchsorted(sp_cols, np.arange(shape[1] + 1)).astype(int)
+        sparsity = ca.Sparsity(shape[0], shape[1], colind.tolist(), sp_rows.tolist())
+        total, start = 0, 0
+        for vals, r, _, wts in parts:
+            m = len(r)
+            pick = ca.DM(ca.Sparsity.triplet(len(uniq), m, where[start:start + m].tolist(), list(range(m))),
+                         np.asarray(wts, dtype=float))
+            total = total + ca.mtimes(pick, vals)
+            start += m
+        return ca.sparsity_cast(total, sparsity)
+
+    def derivative_functions(self, hessian: bool = True) -> dict:
+        """``jac_g`` and (when ``hessian``) ``hess_lag`` for CasADi's nlpsol, exact, assembled per
+        segment: the integration enters the constraints only through the defects, linearly in the
+        segment ends W; so dg/dx = dg/dx|W + dg/dW dW/dx and the Lagrangian's Hessian is that of
+        the W-free part plus, per segment, the Hessian of (its defect multipliers)' W.  Each
+        segment's 7 x 8 Jacobian and 8 x 8 Hessian are SX functions mapped over the coast (in
+        threads), instead of CasADi's colouring of the whole MX graph."""
+        key = ("nlp derivatives", hessian)
+        if key in self._segments:
+            return self._segments[key]
+        x, g_w, n = self.nlp["x"], self._g_w, self.segments
+        ws = [w for *_, w in self._shots]
+        nx, ng = x.numel(), g_w.numel()
+        jx = ca.jacobian(g_w, x)
+        r0, c0 = jx.sparsity().get_triplet()
+        jparts = [(jx.nz[:] if jx.nnz() else ca.MX(0, 1), r0, c0, np.ones(len(r0)))]
+        ends, mus, hparts = [], [], []
+        lam_f, lam_g = ca.MX.sym("lam_f"), ca.MX.sym("lam_g", ng)
+        for k, nodes, slen, w in self._shots:
+            jac_map, hess_map = self._segment_derivatives(self.steps[k])
+            hs = ca.repmat(slen / n, 1, n)
+            end, jmat = jac_map(nodes[:, :-1], hs)
+            ends.append(end)
+            dgdw = ca.evalf(ca.jacobian(g_w, w))  # constant: the defects are +W
+            grow, wcol = dgdw.sparsity().get_triplet()
+            coef = np.asarray(dgdw.nonzeros())
+            row_of = np.full(7 * n, -1)
+            row_of[np.asarray(wcol)] = grow
+            if np.any(row_of < 0) or np.any(coef != 1.0):
+                raise AssertionError("segment ends must enter the constraints as +W")
+            # Jacobian: entry (i, a) of segment s sits at column 8 s + a of the 7 x 8n map output
+            i, a, sidx = np.meshgrid(np.arange(7), np.arange(8), np.arange(n), indexing="ij")
+            i, a, sidx = (q.transpose(2, 1, 0).ravel() for q in (i, a, sidx))  # column-major of jmat
+            rows = row_of[7 * sidx + i]
+            cols = np.array([self._x_index(k, aa, ss) for aa, ss in zip(a, sidx)])
+            jparts.append((ca.vec(jmat), rows, cols, np.where(a == 7, 1.0 / n, 1.0)))
+            if hessian:
+                mu = ca.reshape(ca.mtimes(ca.DM(dgdw).T, lam_g), 7, n)
+                hmat = hess_map(nodes[:, :-1], hs, mu)
+                hr, hc = hmat.sparsity().get_triplet()
+                hr, hc = np.asarray(hr), np.asarray(hc)
+                ss, hb = hc // 8, hc % 8
+                rows = [self._x_index(k, aa, s_) for aa, s_ in zip(hr, ss)]
+                cols = [self._x_index(k, bb, s_) for bb, s_ in zip(hb, ss)]
+                wts = (1.0 / n) ** ((hr == 7).astype(int) + (hb == 7).astype(int))
+                hparts.append((hmat.nz[:], rows, cols, wts))
+        g = ca.substitute([g_w], ws, ends)[0]
+        p = ca.MX.sym("p", 0, 1)
+        jac = self._assemble((ng, nx), jparts)
+        out = {"jac_g": ca.Function("nlp_jac_g", [x, p], [g, jac], ["x", "p"], ["g", "jac_g_x"])}
+        if hessian:
+            lag = lam_f * self.f + ca.dot(lam_g, g_w)
+            hx = ca.triu(ca.hessian(lag, x)[0])
+            r0, c0 = hx.sparsity().get_triplet()
+            parts = [(hx.nz[:] if hx.nnz() else ca.MX(0, 1), r0, c0, np.ones(len(r0)))] + hparts
+            hess = self._assemble((nx, nx), parts, triu=True)
+            out["hess_lag"] = ca.Function("nlp_hess_l", [x, p, lam_f, lam_g], [hess],
+                                          ["x", "p", "lam_f", "lam_g"], ["triu_hess_gamma_x_x"])
+        self._segments[key] = out
+        return out
 
     # -- guesses and results -------------------------------------------------------------------
     def guess_vector(self, phase_states, burns_dv, slens, start=None) -> np.ndarray:

@@ -19,7 +19,7 @@ import math
 import numpy as np
 
 from ..constants import GM_EARTH, GM_MOON, GM_SUN, J2_EARTH, R_EARTH, R_MOON
-from .base import Body, ForceModel, point_mass, third_body
+from .base import Body, ForceModel, inv_cube_casadi, point_mass, third_body
 
 
 class EarthCentred(ForceModel):
@@ -76,15 +76,15 @@ class EarthCentred(ForceModel):
     def acceleration_casadi(self, t, r, v=None):
         import casadi as ca
 
-        def pull(gm, d):
-            return gm * d / ca.power(ca.sumsqr(d), 1.5)
+        def pull(gm, d):  # acceleration toward a body at separation d
+            return gm * d * inv_cube_casadi(d)
 
         acc = -pull(self.gm_earth, r)
         m = self.ephemeris.moon_casadi(t)
-        acc += pull(self.gm_moon, m - r) - pull(self.gm_moon, m)
+        acc -= pull(self.gm_moon, r - m) + pull(self.gm_moon, m)  # r - m: the separation the NLP shares
         if self.sun:
             s = self.ephemeris.sun_casadi(t)
-            acc += pull(self.gm_sun, s - r) - pull(self.gm_sun, s)
+            acc -= pull(self.gm_sun, r - s) + pull(self.gm_sun, s)
         if self.j2:
             rr = ca.sumsqr(r)
             zz = r[2] ** 2 / rr

@@ -1,0 +1,97 @@
+"""The NLP's constraint Jacobian and Lagrangian Hessian, assembled segment by segment
+(:meth:`optimizer.transcription.Transcription.derivative_functions`), against two references
+that do not use that assembly:
+
+* CasADi's own derivatives of the whole expression graph (``nlpsol``'s generated ``nlp_jac_g`` and
+  ``nlp_hess_l``), which must agree to rounding, with the same sparsity;
+* central finite differences of the constraints (and of the Lagrangian's gradient), which must
+  agree to the accuracy of the difference formula.
+
+Layouts: one free burn, a fixed-direction burn plus a return-leg burn with an arrival inclination
+range and a perigee target, a parking-orbit injection (free epoch and node) with the earliest-arrival
+objective, and a transcription refined to other step counts per coast.
+"""
+
+from dataclasses import replace
+
+import casadi as ca
+import numpy as np
+import pytest
+
+import test_optimizer as base
+from test_optimizer import model, natural  # noqa: F401  (the shared fixtures)
+from optimizer.problem import BurnSpec, Objective, ParkingStart, ReturnSpec
+from optimizer.solver import IPOPT_OPTIONS, initial_guess
+from optimizer.transcription import Transcription
+
+HOUR = 3600.0
+
+
+def _layouts(natural):
+    one = base._problem(base._nudged(natural, 10.0))
+    two = replace(one, burns=(BurnSpec(base.WINDOW, 300.0, direction="along"),
+                              BurnSpec((base.T_PERILUNE + 6 * HOUR, base.T_PERILUNE + 30 * HOUR), 300.0,
+                                       leg="return")),
+                  arrival=ReturnSpec(target="perigee", perigee_alt_km=(30.0, 60.0), inclination_deg=(20.0, 80.0)))
+    injection = replace(one, start=ParkingStart(185.0, 30.0, (base.T_START - 3 * 86400.0, base.T_START - 2.5 * 86400.0)),
+                        burns=(BurnSpec((base.T_START - 3 * 86400.0, base.T_START - 2.5 * 86400.0), 3300.0,
+                                        direction="along"),),
+                        objective=Objective("earliest", dv_budget_mps=3300.0))
+    return {"one free burn": (one, [2, 2, 2]), "along + return, perigee, inclination": (two, [2, 2, 2, 2]),
+            "injection, earliest": (injection, [2, 2]), "refined steps": (one, [4, 2, 3])}
+
+
+@pytest.fixture(scope="module", params=["one free burn", "along + return, perigee, inclination",
+                                        "injection, earliest", "refined steps"])
+def case(request, natural, model):
+    prob, steps = _layouts(natural)[request.param]
+    tr = Transcription(prob, model, steps, 6)
+    rng = np.random.default_rng(7)
+    if prob.start.__class__.__name__ == "StateStart":
+        x = tr.guess_vector(*initial_guess(prob, model, tr)[:3])
+    else:  # a point near the parking orbit's design: the bounds' middle, nudged
+        x = np.clip(tr.x0, tr.lbx, tr.ubx)
+        x = x + 1e-3 * rng.normal(size=x.size)
+    x = x * (1.0 + 1e-4 * rng.normal(size=x.size))  # off the guess's structure (nonzero defects)
+    lam_g = rng.normal(size=tr.v.ng)
+    return tr, x, lam_g
+
+
+def _dense(a):
+    return np.asarray(ca.densify(a))
+
+
+def test_assembled_derivatives_equal_casadis_own(case):
+    tr, x, lam_g = case
+    ref = ca.nlpsol("ref", "ipopt", tr.nlp, IPOPT_OPTIONS)
+    mine = tr.derivative_functions()
+    g_ref, j_ref = ref.get_function("nlp_jac_g")(x, [])
+    g_new, j_new = mine["jac_g"](x, [])
+    np.testing.assert_allclose(_dense(g_new), _dense(g_ref), rtol=0, atol=1e-13)
+    assert j_new.sparsity() == j_ref.sparsity()
+    scale = np.max(np.abs(_dense(j_ref)))
+    np.testing.assert_allclose(_dense(j_new), _dense(j_ref), rtol=0, atol=1e-11 * scale)
+    h_ref = ref.get_function("nlp_hess_l")(x, [], 0.3, lam_g)
+    h_new = mine["hess_lag"](x, [], 0.3, lam_g)
+    assert h_new.sparsity() == h_ref.sparsity() and h_new.sparsity().is_triu()
+    scale = np.max(np.abs(_dense(h_ref)))
+    np.testing.assert_allclose(_dense(h_new), _dense(h_ref), rtol=0, atol=1e-10 * scale)
+
+
+def test_assembled_derivatives_equal_finite_differences(case):
+    tr, x, lam_g = case
+    mine = tr.derivative_functions()
+    g_fn = ca.Function("g", [tr.nlp["x"]], [tr.nlp["g"]])
+    grad_l = ca.Function("gl", [tr.nlp["x"]], [ca.gradient(0.3 * tr.nlp["f"] + ca.dot(lam_g, tr.nlp["g"]), tr.nlp["x"])])
+    jac = _dense(mine["jac_g"](x, [])[1])
+    hess = _dense(mine["hess_lag"](x, [], 0.3, lam_g))
+    hess = np.triu(hess) + np.triu(hess, 1).T
+    rng = np.random.default_rng(3)
+    for col in rng.choice(x.size, size=12, replace=False):
+        h = 1e-6 * max(1.0, abs(x[col]))
+        e = np.zeros(x.size)
+        e[col] = h
+        fd = (np.asarray(g_fn(x + e)).ravel() - np.asarray(g_fn(x - e)).ravel()) / (2 * h)
+        np.testing.assert_allclose(jac[:, col], fd, rtol=0, atol=1e-6 * max(1.0, np.max(np.abs(jac))))
+        fd = (np.asarray(grad_l(x + e)).ravel() - np.asarray(grad_l(x - e)).ravel()) / (2 * h)
+        np.testing.assert_allclose(hess[:, col], fd, rtol=0, atol=1e-5 * max(1.0, np.max(np.abs(hess))))
