@@ -28,6 +28,7 @@ class Seed:
     arrival: Event | None
     departure_alt_km: float
     return_alt_km: float
+    params: tuple = ()  # (angle, speed[, tilt]) of the perilune state: a start for a nearby seed
 
 
 def perilune_state(model, t_p, alt_km, angle, speed, tilt=0.0):
@@ -44,7 +45,9 @@ def perilune_state(model, t_p, alt_km, angle, speed, tilt=0.0):
 
 
 def _near_perigee(model, t_p, y, days, sign, rtol=SEED_RTOL):
-    arc = propagate(model, t_p, y, t_p + sign * days * 86400.0, events=("perigee",), terminal=(),
+    # the first perigee ends the arc: from a far-side perilune the distance to Earth falls until
+    # the perigee wanted (a path whose first perigee is far never comes near Earth in time)
+    arc = propagate(model, t_p, y, t_p + sign * days * 86400.0, events=("perigee",), terminal=("perigee",),
                     rtol=rtol, atol=rtol)
     near = [e for e in arc.events if np.linalg.norm(e.y[:3]) < 150000.0]
     return near[0] if near else None
@@ -56,7 +59,7 @@ def ballistic(model, t_p, alt_km, angle, speed, tilt=0.0, days=5.0, rtol=SEED_RT
     dep = _near_perigee(model, t_p, y, days, -1.0, rtol)
     arr = _near_perigee(model, t_p, y, days, 1.0, rtol)
     alt = lambda e: np.linalg.norm(e.y[:3]) - model.earth.radius if e is not None else 1e6  # noqa: E731
-    return Seed(t_p, y, dep, arr, alt(dep), alt(arr))
+    return Seed(t_p, y, dep, arr, alt(dep), alt(arr), (float(angle), float(speed), float(tilt)))
 
 
 def inclination_deg(y) -> float:
@@ -80,8 +83,9 @@ def circumlunar(model, t_p, alt_km=150.0, departure_alt_km=200.0, return_alt_km=
             out.append(100.0 * (inc - departure_inclination_deg))
         return np.array(out) / 1000.0
 
-    p = fsolve(f, list(guess) + ([0.0] if departure_inclination_deg is not None else []),
-               xtol=max(1e-13, rtol * 10))
+    start = list(guess)[:2] + ([list(guess)[2] if len(guess) > 2 else 0.0]
+                               if departure_inclination_deg is not None else [])
+    p = fsolve(f, start, xtol=max(1e-13, rtol * 10))
     seed = ballistic(model, t_p, alt_km, *p, rtol=rtol)
     if abs(seed.departure_alt_km - departure_alt_km) > 1.0 or abs(seed.return_alt_km - return_alt_km) > 1.0 \
             or (departure_inclination_deg is not None

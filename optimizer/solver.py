@@ -298,7 +298,8 @@ def injection_guess(problem, model, tr: Transcription):
     t_p, seed = t_mid + 3.0 * 86400.0, None
     for _ in range(3):  # move the perilune so that the departure falls mid-window
         try:
-            seed = circumlunar(model, t_p, alt, st.altitude_km, ret_alt, guess=(0.0, 2.5),
+            seed = circumlunar(model, t_p, alt, st.altitude_km, ret_alt,
+                               guess=seed.params if seed is not None else (0.0, 2.5),
                                departure_inclination_deg=st.inclination_deg, rtol=GUESS_RTOL)
         except ValueError as exc:
             raise SolveError(f"no injection guess: {exc}") from None
@@ -730,7 +731,7 @@ def _with_zero_burns(problem, model, first, burns, kept, steps, start):
     return plan
 
 
-def _solve_staged(problem, model, say, ipopt_options, stages, t_start) -> Plan:
+def _solve_staged(problem, model, say, ipopt_options, stages, t_start, continued=False) -> Plan:
     """Several burns, cold: solve with one burn alone, test the others (held at zero) with the
     primer vector, then give the whole layout's answer.
 
@@ -748,7 +749,11 @@ def _solve_staged(problem, model, say, ipopt_options, stages, t_start) -> Plan:
 
     Measured on the robustness set (``bench_robustness.py``): solving two burns together from a
     cold start stalls in most layouts whose second burn is not needed.
+
+    ``continued``: the problem asks for model continuation; each stage's solve runs its own
+    (``model`` is then the final model, used for the held burns' zero-burn path).
     """
+    own = None if continued else model  # the model each stage's solve is given
     usable = _usable_burns(problem)
     for alone in usable:  # the first listed usable burn alone, then the next if that fails
         held = [j for j in usable if j != alone]
@@ -756,14 +761,14 @@ def _solve_staged(problem, model, say, ipopt_options, stages, t_start) -> Plan:
         reduced = replace(problem, burns=tuple(problem.burns[j] for j in kept))
         say(f"several burns: solving with burn {alone + 1} alone first "
             f"(burn(s) {', '.join(str(j + 1) for j in held)} held at zero)")
-        first = solve(reduced, model=model, progress=say, ipopt_options=ipopt_options, _staged=True)
+        first = solve(reduced, model=own, progress=say, ipopt_options=ipopt_options, _staged=True)
         tr1 = getattr(first, "_transcription", None)
         if first.status == "verified" and tr1 is not None:
             break
         say(f"burn {alone + 1} alone: {first.status}")
     else:
         say("no burn alone gives a verified plan; solving all burns together")
-        return solve(problem, model=model, progress=say, ipopt_options=ipopt_options, _staged=True)
+        return solve(problem, model=own, progress=say, ipopt_options=ipopt_options, _staged=True)
     scan = primer_scan(tr1, first.warm["x"], first.warm["lam_g"])
     epochs = {j: first.burns[i].epoch for i, j in enumerate(kept)}
     t_peri = first.events[0].epoch
@@ -789,7 +794,7 @@ def _solve_staged(problem, model, say, ipopt_options, stages, t_start) -> Plan:
             "the start: a cheaper path uses it; solving all burns together")
         # measured: from the targeted cold guess the whole problem converges where a small burn
         # released along the primer from the one-burn answer stalls (|p| = 19 case of test_primer)
-        direct = solve(problem, model=model, progress=say, ipopt_options=ipopt_options, _staged=True)
+        direct = solve(problem, model=own, progress=say, ipopt_options=ipopt_options, _staged=True)
         if direct.verified and direct.total_dv_mps < first.total_dv_mps:
             direct.solver["primer"] = {**record, "result": f"|p| = {p_max:.4f} > 1 for burn {j + 1}; "
                                        "solved all burns together"}
@@ -823,7 +828,7 @@ def _solve_staged(problem, model, say, ipopt_options, stages, t_start) -> Plan:
         if direct is not None:  # the whole problem was solved already (above)
             return direct
         say("the staged solve did not give a verified whole-layout plan; solving all burns together")
-        return solve(problem, model=model, progress=say, ipopt_options=ipopt_options, _staged=True)
+        return solve(problem, model=own, progress=say, ipopt_options=ipopt_options, _staged=True)
     best = min(candidates, key=lambda pl: pl.total_dv_mps)
     best.solver["stages"] = list(best.solver.get("stages", [])) + [
         {"stage": "without the held burns", "status": first.status, "total_dv_mps": first.total_dv_mps,
@@ -870,6 +875,13 @@ def _solve_impl(problem, warm, progress, model, ipopt_options, _staged) -> Plan:
     t_start = time.perf_counter()
     stages = []
     if problem.model.continuation and warm is None and model is None:
+        if not _staged and held_burns(problem):
+            # staged first, each stage with its own continuation: continuing the whole layout
+            # from a cheaper model's plan carries its zero held burns, a degenerate start
+            # (measured, problems/demo-injection.toml: 300 + 300 + 137 iterations in the
+            # ephemeris stage, where the one-burn layout's own continuation needs 3x fewer)
+            model = build_model(problem.model, *model_span(problem))
+            return _solve_staged(problem, model, say, ipopt_options, stages, t_start, continued=True)
         warm, stages = _continuation(problem, say, ipopt_options)
     if model is None:
         model = build_model(problem.model, *model_span(problem))
