@@ -44,6 +44,10 @@ IPOPT_OPTIONS = {
     "ipopt.print_level": 0,
     "print_time": False,
     "ipopt.sb": "yes",
+    # a NaN at a line-search trial point (a step through a body's centre) is handled by IPOPT's
+    # backtracking; CasADi's per-evaluation warning for it flooded sweep logs (3,745 lines in one
+    # bench_trade.py run).  A real evaluation failure still ends the solve with its status.
+    "show_eval_warnings": False,
     "ipopt.max_iter": 300,
     "ipopt.tol": 1e-9,
     "ipopt.constr_viol_tol": 1e-10,
