@@ -463,7 +463,7 @@ class Transcription:
         jx = ca.jacobian(g_w, x)
         r0, c0 = jx.sparsity().get_triplet()
         jparts = [(jx.nz[:] if jx.nnz() else ca.MX(0, 1), r0, c0, np.ones(len(r0)))]
-        ends, mus, hparts = [], [], []
+        ends, hparts = [], []
         lam_f, lam_g = ca.MX.sym("lam_f"), ca.MX.sym("lam_g", ng)
         for k, nodes, slen, w in self._shots:
             jac_map, hess_map = self._segment_derivatives(self.steps[k])
