@@ -430,8 +430,8 @@ def build_solver(tr: Transcription, opts: dict):
 class NLPCache:
     """Built IPOPT solvers, reused by NLPs of the same structure (:func:`structure_key`) and options.
 
-    Building a solver costs ~0.7 s (measured on the demo problems: most of it CasADi generating the
-    derivative functions), more than a warm-started solve; trade-study cells, the zero-burn re-solve
+    Building a solver costs ~0.25 s (measured on the bench_abort.py case: most of it generating the
+    segments' SX derivatives; ~0.7 s before they were assembled per segment), about a warm solve; trade-study cells, the zero-burn re-solve
     and repeated solves share one structure.  Least recently used entries are dropped beyond
     ``size``; an entry holds its model, so the model's ``id`` in the key cannot be reused.
     """
