@@ -425,6 +425,13 @@ class Transcription:
         return self.v.index[f"z{k}"].start + 7 * seg + a
 
     @staticmethod
+    def _part(expr):
+        """An MX matrix as a part for :meth:`_assemble`: its nonzeros where they stand, weight 1."""
+        rows, cols = expr.sparsity().get_triplet()
+        vals = expr.nz[:] if expr.nnz() else ca.MX(0, 1)
+        return vals, rows, cols, np.ones(len(rows))
+
+    @staticmethod
     def _assemble(shape, parts, triu=False):
         """Sparse sum of MX nonzero vectors.  ``parts``: (values (MX column), rows, cols, weights),
         one entry of rows/cols/weights per value.  Returns an MX of ``shape`` whose nonzeros are
@@ -460,31 +467,25 @@ class Transcription:
         x, g_w, n = self.nlp["x"], self._g_w, self.segments
         ws = [w for *_, w in self._shots]
         nx, ng = x.numel(), g_w.numel()
-        jx = ca.jacobian(g_w, x)
-        r0, c0 = jx.sparsity().get_triplet()
-        jparts = [(jx.nz[:] if jx.nnz() else ca.MX(0, 1), r0, c0, np.ones(len(r0)))]
+        jparts = [self._part(ca.jacobian(g_w, x))]
         ends, hparts = [], []
         lam_f, lam_g = ca.MX.sym("lam_f"), ca.MX.sym("lam_g", ng)
-        for k, nodes, slen, w in self._shots:
+        for k, nodes, slen, _ in self._shots:
             jac_map, hess_map = self._segment_derivatives(self.steps[k])
             hs = ca.repmat(slen / n, 1, n)
             end, jmat = jac_map(nodes[:, :-1], hs)
             ends.append(end)
-            dgdw = ca.evalf(ca.jacobian(g_w, w))  # constant: the defects are +W
-            grow, wcol = dgdw.sparsity().get_triplet()
-            coef = np.asarray(dgdw.nonzeros())
-            row_of = np.full(7 * n, -1)
-            row_of[np.asarray(wcol)] = grow
-            if np.any(row_of < 0) or np.any(coef != 1.0):
-                raise AssertionError("segment ends must enter the constraints as +W")
+            # W enters only its coast's defects, as +W (``_add_phases``): entry (i, s) of W is
+            # constraint row start + 7 s + i
+            rows_w = self.v.gindex[f"defects{k}"]
             # Jacobian: entry (i, a) of segment s sits at column 8 s + a of the 7 x 8n map output
             i, a, sidx = np.meshgrid(np.arange(7), np.arange(8), np.arange(n), indexing="ij")
             i, a, sidx = (q.transpose(2, 1, 0).ravel() for q in (i, a, sidx))  # column-major of jmat
-            rows = row_of[7 * sidx + i]
+            rows = rows_w.start + 7 * sidx + i
             cols = np.array([self._x_index(k, aa, ss) for aa, ss in zip(a, sidx)])
             jparts.append((ca.vec(jmat), rows, cols, np.where(a == 7, 1.0 / n, 1.0)))
             if hessian:
-                mu = ca.reshape(ca.mtimes(ca.DM(dgdw).T, lam_g), 7, n)
+                mu = ca.reshape(lam_g[rows_w], 7, n)
                 hmat = hess_map(nodes[:, :-1], hs, mu)
                 hr, hc = hmat.sparsity().get_triplet()
                 hr, hc = np.asarray(hr), np.asarray(hc)
@@ -499,10 +500,7 @@ class Transcription:
         out = {"jac_g": ca.Function("nlp_jac_g", [x, p], [g, jac], ["x", "p"], ["g", "jac_g_x"])}
         if hessian:
             lag = lam_f * self.f + ca.dot(lam_g, g_w)
-            hx = ca.triu(ca.hessian(lag, x)[0])
-            r0, c0 = hx.sparsity().get_triplet()
-            parts = [(hx.nz[:] if hx.nnz() else ca.MX(0, 1), r0, c0, np.ones(len(r0)))] + hparts
-            hess = self._assemble((nx, nx), parts, triu=True)
+            hess = self._assemble((nx, nx), [self._part(ca.triu(ca.hessian(lag, x)[0]))] + hparts, triu=True)
             out["hess_lag"] = ca.Function("nlp_hess_l", [x, p, lam_f, lam_g], [hess],
                                           ["x", "p", "lam_f", "lam_g"], ["triu_hess_gamma_x_x"])
         self._segments[key] = out
