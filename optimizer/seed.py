@@ -83,8 +83,9 @@ def circumlunar(model, t_p, alt_km=150.0, departure_alt_km=200.0, return_alt_km=
             out.append(100.0 * (inc - departure_inclination_deg))
         return np.array(out) / 1000.0
 
-    start = list(guess)[:2] + ([list(guess)[2] if len(guess) > 2 else 0.0]
-                               if departure_inclination_deg is not None else [])
+    start = list(guess[:2])
+    if departure_inclination_deg is not None:  # the pass plane's tilt is a third unknown
+        start.append(guess[2] if len(guess) > 2 else 0.0)
     p = fsolve(f, start, xtol=max(1e-13, rtol * 10))
     seed = ballistic(model, t_p, alt_km, *p, rtol=rtol)
     if abs(seed.departure_alt_km - departure_alt_km) > 1.0 or abs(seed.return_alt_km - return_alt_km) > 1.0 \

@@ -62,10 +62,10 @@ IPOPT_OPTIONS = {
     # 31, 141, 71, 105; 0.1: 71; 35, 39, 61, 53, 108, 105; 0.01: 224; 20, 12, 15, 32, 26, 34.
     "ipopt.obj_scaling_factor": 0.3,
 }
-#: Cold starts that stall (not infeasible) are retried from the same point with, in turn:
-#: measured on the robustness set (bench_robustness.py), cases 14 and 26 stall at the default
-#: objective weight and converge at 0.03 (31 and 50 iterations); where the exact Hessian stalls,
-#: a quasi-Newton run from the same start often converges.
+#: Cold starts that stall, or that IPOPT declares locally infeasible, are retried from the same
+#: point with, in turn: measured on the robustness set (bench_robustness.py), cases 14 and 26
+#: stall at the default objective weight and converge at 0.03 (31 and 50 iterations); where the
+#: exact Hessian stalls, a quasi-Newton run from the same start often converges.
 RETRIES = (("a lighter objective weight (0.03)", {"ipopt.obj_scaling_factor": 0.03}),
            ("a limited-memory Hessian", {"ipopt.hessian_approximation": "limited-memory"}))
 WARM_OPTIONS = {
@@ -430,9 +430,9 @@ def build_solver(tr: Transcription, opts: dict):
 class NLPCache:
     """Built IPOPT solvers, reused by NLPs of the same structure (:func:`structure_key`) and options.
 
-    Building a solver costs ~0.25 s (measured on the bench_abort.py case: most of it generating the
-    segments' SX derivatives; ~0.7 s before they were assembled per segment), about a warm solve; trade-study cells, the zero-burn re-solve
-    and repeated solves share one structure.  Least recently used entries are dropped beyond
+    Building a solver costs ~0.25 s (measured on the bench_abort.py case: most of it generating
+    the segments' SX derivatives; ~0.7 s before they were assembled per segment), about a warm
+    solve; trade-study cells, the zero-burn re-solve and repeated solves share one structure.  Least recently used entries are dropped beyond
     ``size``; an entry holds its model, so the model's ``id`` in the key cannot be reused.
     """
 
@@ -622,8 +622,8 @@ def primer_scan(tr: Transcription, x, lam_g, lam_x=None) -> list[dict]:
     With ``L = f + lam_g . g``, an impulse ``delta`` added to the velocity at a node changes the
     optimal Lagrangian by ``dL/ddelta . delta`` to first order: ``lam`` of the defect that ends at
     that node (the node is the segment's end plus the impulse), minus ``lam`` of the link for the
-    first node of a coast, or minus ``lam_x`` of the fixed start state (given ``lam_x``).  The impulse also costs ``price * |delta|`` (``price = df/dsigma``), so it
-    pays iff ``|p| = |dL/ddelta| / price > 1``, and then along ``-dL/ddelta``.  This is the primer
+    first node of a coast, or minus ``lam_x`` of the fixed start state (given ``lam_x``).  The
+    impulse also costs ``price * |delta|`` (``price = df/dsigma``), so it pays iff ``|p| = |dL/ddelta| / price > 1``, and then along ``-dL/ddelta``.  This is the primer
     vector condition of impulsive optimal control (Lawden 1963; Prussing, "Primer vector theory and
     applications", in Conway (ed.), Spacecraft Trajectory Optimization, 2010), read off the discrete
     adjoint instead of integrating the costate equations.

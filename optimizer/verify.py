@@ -45,7 +45,7 @@ def make_burn(epoch: float, dv: np.ndarray, pre_burn_state: np.ndarray) -> Burn:
 def repropagate(model, start_epoch, start_state, burns, problem, t_end, rtol=VERIFY_RTOL, atol=VERIFY_ATOL):
     """Propagate ``burns`` from the start with events; returns (arcs, events as EventRecords)."""
     ret = problem.arrival
-    arcs = propagate_burns(model, start_epoch, start_state, sorted((b.epoch, b.dv) for b in burns), t_end,
+    arcs = propagate_burns(model, start_epoch, start_state, sorted(((b.epoch, b.dv) for b in burns), key=lambda e: e[0]), t_end,
                            events=EVENTS, entry_radius=ret.entry_radius_km, terminal=("entry",),
                            rtol=rtol, atol=atol)
     records = []
