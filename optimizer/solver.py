@@ -623,10 +623,11 @@ def primer_scan(tr: Transcription, x, lam_g, lam_x=None) -> list[dict]:
     optimal Lagrangian by ``dL/ddelta . delta`` to first order: ``lam`` of the defect that ends at
     that node (the node is the segment's end plus the impulse), minus ``lam`` of the link for the
     first node of a coast, or minus ``lam_x`` of the fixed start state (given ``lam_x``).  The
-    impulse also costs ``price * |delta|`` (``price = df/dsigma``), so it pays iff ``|p| = |dL/ddelta| / price > 1``, and then along ``-dL/ddelta``.  This is the primer
-    vector condition of impulsive optimal control (Lawden 1963; Prussing, "Primer vector theory and
-    applications", in Conway (ed.), Spacecraft Trajectory Optimization, 2010), read off the discrete
-    adjoint instead of integrating the costate equations.
+    impulse also costs ``price * |delta|`` (``price = df/dsigma``), so it pays iff
+    ``|p| = |dL/ddelta| / price > 1``, and then along ``-dL/ddelta``.  This is the primer vector
+    condition of impulsive optimal control (Lawden 1963; Prussing, "Primer vector theory and
+    applications", in Conway (ed.), Spacecraft Trajectory Optimization, 2010; cited from memory),
+    read off the discrete adjoint instead of integrating the costate equations.
 
     Returns one dict per coast: ``phase``, node ``epochs`` (TDB s), ``magnitude`` |p| and unit
     ``direction`` (3, N+1) of the impulse that lowers the cost (ECI).
