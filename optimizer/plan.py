@@ -13,6 +13,7 @@ import numpy as np
 
 from . import __version__
 from .constants import CAUTION
+from .judge import ConstraintRow
 from .timescales import format_epoch, parse_epoch
 
 FORMAT = "slingback-plan"
@@ -79,6 +80,8 @@ class Verification:
         Events found by the propagator.
     propagator : dict
         Method and tolerances of the re-propagation.
+    constraints : list of ConstraintRow
+        Every constraint of the problem judged on the re-propagated path (:mod:`optimizer.judge`).
     """
 
     passed: bool
@@ -87,6 +90,7 @@ class Verification:
     violations: list
     events: list
     propagator: dict
+    constraints: list = field(default_factory=list)
 
 
 @dataclass
@@ -180,7 +184,8 @@ class Plan:
             events = [_event_from(e) for e in d.get("events", [])]
             ver = d.get("verification")
             if ver is not None:
-                ver = Verification(**{**ver, "events": [_event_from(e) for e in ver["events"]]})
+                ver = Verification(**{**ver, "events": [_event_from(e) for e in ver["events"]],
+                                      "constraints": [ConstraintRow.from_dict(c) for c in ver.get("constraints", [])]})
             traj = d.get("trajectory", {})
             return cls(
                 name=d["name"], status=d["status"], reason=d.get("reason", ""), model=d["model"],

@@ -74,12 +74,20 @@ class Arc:
         return next((e for e in self.events if e.name == name), None)
 
 
-def _event_functions(model, names, entry_radius, terminal, backward=False):
+def _event_functions(model, names, entry_radius, terminal, backward=False, perilune_within=None,
+                     perigee_within=None):
     """Event functions for solve_ivp; returns (functions, their names).
 
     Perilune and perigee are minima of distance in time whatever the direction of integration,
     so their sign change is reversed when integrating backwards; radius crossings (entry,
     impacts) are taken in the direction of integration.
+
+    With ``perilune_within`` (km) a perilune is only a minimum of lunar distance inside that
+    radius: the function is ``max(radial speed, (distance - radius) / 1 s)``, continuous, positive
+    outside the sphere, so a distant minimum (right after injection the lunar distance has one
+    ~300,000 km from the Moon) never changes its sign while a closest approach inside does.
+    ``perigee_within`` does the same for perigees (a minimum of geocentric distance near the Moon's
+    distance after a slow lunar pass is not a return perigee).
     """
     turn = -1.0 if backward else 1.0
     funcs, labels = [], []
@@ -96,10 +104,22 @@ def _event_functions(model, names, entry_radius, terminal, backward=False):
             raise ValueError(f"unknown event {name!r}; expected one of {', '.join(EVENT_NAMES)}")
         if name in ("perilune", "impact_moon") and not has_moon:
             continue
-        if name == "perilune":
+        if name == "perilune" and perilune_within is not None:
+            def f(t, y):
+                d = y[:3] - model.moon_position(t)
+                dist = float(np.linalg.norm(d))
+                return max(float(np.dot(d, y[3:] - model.moon_velocity(t))) / dist, dist - perilune_within)
+            add(f, name, turn, name in terminal)
+        elif name == "perilune":
             def f(t, y):
                 d = y[:3] - model.moon_position(t)
                 return float(np.dot(d, y[3:] - model.moon_velocity(t)))
+            add(f, name, turn, name in terminal)
+        elif name == "perigee" and perigee_within is not None:
+            def f(t, y):
+                r = y[:3] - model.earth_position(t)
+                dist = float(np.linalg.norm(r))
+                return max(float(np.dot(r, y[3:] - model.earth_velocity(t))) / dist, dist - perigee_within)
             add(f, name, turn, name in terminal)
         elif name == "perigee":
             def f(t, y):
@@ -124,7 +144,8 @@ def _event_functions(model, names, entry_radius, terminal, backward=False):
 
 def propagate(model, t0: float, y0, t1: float, *, events=(), entry_radius: float | None = None,
               terminal=("entry",), rtol: float = VERIFY_RTOL, atol: float = VERIFY_ATOL,
-              max_step: float = np.inf) -> Arc:
+              max_step: float = np.inf, perilune_within: float | None = None,
+              perigee_within: float | None = None) -> Arc:
     """Propagate a coast with DOP853 and find events on the way.
 
     Parameters
@@ -141,6 +162,11 @@ def propagate(model, t0: float, y0, t1: float, *, events=(), entry_radius: float
         Geocentric radius of the entry interface (model length unit), for the ``entry`` event.
     rtol, atol : float
         DOP853 tolerances (defaults are the verification tolerances).
+    perilune_within : float, optional
+        Count only perilunes closer than this to the Moon's centre (km); default: every local
+        minimum of lunar distance.
+    perigee_within : float, optional
+        The same for perigees (km from Earth's centre).
 
     Returns
     -------
@@ -151,7 +177,8 @@ def propagate(model, t0: float, y0, t1: float, *, events=(), entry_radius: float
         raise ValueError(f"y0 must be 6 finite numbers, got {y0!r}")
     if not (np.isfinite(t0) and np.isfinite(t1)) or t0 == t1:
         raise ValueError(f"need two different finite epochs, got t0={t0!r}, t1={t1!r}")
-    funcs, labels = _event_functions(model, events, entry_radius, set(terminal), backward=t1 < t0)
+    funcs, labels = _event_functions(model, events, entry_radius, set(terminal), backward=t1 < t0,
+                                     perilune_within=perilune_within, perigee_within=perigee_within)
     sol = solve_ivp(model.rhs, (t0, t1), y0, method="DOP853", rtol=rtol, atol=atol,
                     dense_output=True, events=funcs or None, max_step=max_step)
     if sol.status < 0:

@@ -1,134 +1,36 @@
 """The one-page run report (Markdown) and the constraint table it shows.
 
-Constraint values come from the independent re-propagation when there is one (else from the
-optimiser's own events, and the report says so).  A constraint is *active* when its value lies at
-a bound within :data:`ACTIVE_TOL`, *violated* when beyond a bound by more than that, else
-*inactive*.
+Constraint rows come from the one evaluator, :mod:`optimizer.judge`, on the independent
+re-propagation: the same rows decide the verdict.
 """
 
 from __future__ import annotations
 
 import json
-import math
-from dataclasses import dataclass
 
 import numpy as np
 
 from .. import __version__
 from ..constants import CAUTION
+from ..judge import ACTIVE_TOL, ConstraintRow
 from ..timescales import format_epoch
 
 __all__ = ["ConstraintRow", "constraint_rows", "report_markdown", "ACTIVE_TOL"]
 
-#: How close to a bound counts as "at" it, per unit.
-ACTIVE_TOL = {"s": 1.0, "m/s": 0.01, "deg": 0.01, "km": 1.0, "h": 1.0 / 3600.0, "d": 1.0 / 86400.0}
-
-
-@dataclass(frozen=True)
-class ConstraintRow:
-    """One constraint: its value, bounds (None: unbounded on that side), unit and state."""
-
-    name: str
-    value: float | None
-    lo: float | None
-    hi: float | None
-    unit: str
-    tol: float
-    state: str  # "active", "inactive", "violated" or "not evaluated"
-
-
-def _row(name, value, lo, hi, unit, tol=None) -> ConstraintRow:
-    tol = ACTIVE_TOL[unit] if tol is None else tol
-    if value is None or not math.isfinite(value):
-        return ConstraintRow(name, None, lo, hi, unit, tol, "not evaluated")
-    if (lo is not None and value < lo - tol) or (hi is not None and value > hi + tol):
-        state = "violated"
-    elif (lo is not None and abs(value - lo) <= tol) or (hi is not None and abs(value - hi) <= tol):
-        state = "active"
-    else:
-        state = "inactive"
-    return ConstraintRow(name, float(value), lo, hi, unit, tol, state)
-
-
-def _events(plan, sampled):
-    """Events to judge constraints by, and where they come from."""
-    if sampled is not None:
-        return sampled.events, "independent re-propagation"
-    if plan.verification is not None:
-        return plan.verification.events, "independent re-propagation (verification record)"
-    return plan.events, "optimiser's events (no re-propagation available)"
-
 
 def constraint_rows(plan, problem, sampled=None) -> list[ConstraintRow]:
-    """Every constraint of ``problem`` evaluated on ``plan``."""
-    events, _ = _events(plan, sampled)
-    ev = {}
-    for e in events:
-        ev.setdefault(e.name, e)
-    rows = []
-    for i, (b, spec) in enumerate(zip(plan.burns, problem.burns), 1):
-        rows.append(_row(f"burn {i} epoch", b.epoch, *spec.window, "s"))
-        rows.append(_row(f"burn {i} Δv", b.dv_mps, 0.0, spec.max_dv_mps, "m/s"))
-        v = _pre_burn_velocity(plan, sampled, i)
-        if spec.direction != "free" and v is not None and b.dv_mps > 0:
-            angle = math.degrees(math.acos(np.clip(np.dot(v, b.dv) / np.linalg.norm(v) / np.linalg.norm(b.dv), -1, 1)))
-            target = 0.0 if spec.direction == "along" else 180.0
-            rows.append(_row(f"burn {i} angle to velocity ({spec.direction})", angle, target, target, "deg"))
-    if problem.min_burn_spacing_s > 0:
-        for i in range(1, len(plan.burns)):
-            gap = (plan.burns[i].epoch - plan.burns[i - 1].epoch) / 3600.0
-            rows.append(_row(f"spacing of burns {i} and {i + 1}", gap, problem.min_burn_spacing_s / 3600.0, None, "h"))
-    peri = ev.get("perilune")
-    rows.append(_row("perilune altitude", peri.altitude_km if peri else None, *problem.lunar.altitude_km, "km",
-                     problem.tolerances.perilune_altitude_km))
-    a = problem.arrival
-    arr = ev.get(a.target)
-    if a.target == "entry":
-        rows.append(_row("entry flight-path angle", arr.flight_path_deg if arr else None, *a.flight_path_deg,
-                         "deg", problem.tolerances.flight_path_deg))
-    else:
-        rows.append(_row("perigee altitude", arr.altitude_km if arr else None, *a.perigee_alt_km, "km",
-                         problem.tolerances.perigee_altitude_km))
-    if a.epoch_window is not None:
-        rows.append(_row("arrival epoch", arr.epoch if arr else None, *a.epoch_window, "s"))
-    if a.inclination_deg is not None:
-        rows.append(_row("arrival inclination", arr.inclination_deg if arr else None, *a.inclination_deg, "deg"))
-    if a.max_duration_days is not None:
-        rows.append(_row("time to arrival", (arr.epoch - plan.start_epoch) / 86400.0 if arr else None,
-                         None, a.max_duration_days, "d"))
-    if problem.objective.dv_budget_mps is not None:
-        rows.append(_row("total Δv (budget)", plan.total_dv_mps, None, problem.objective.dv_budget_mps, "m/s"))
-    if sampled is not None:
-        rows += _clearances(sampled, problem)
-    return rows
+    """Every constraint of ``problem`` on ``plan``, from the one evaluator (:mod:`optimizer.judge`):
+    the rows of the plan's verification, or, when none was recorded (a failed solve, an old plan),
+    of a fresh independent re-propagation.  ``sampled`` is accepted for the callers' convenience and
+    not needed."""
+    if plan.verification is not None and plan.verification.constraints:
+        return list(plan.verification.constraints)
+    from .check import PlanFileError, recheck
 
-
-def _pre_burn_velocity(plan, sampled, i):
-    """Velocity just before burn ``i`` (1-based): end of the coast before it, or the start state."""
-    if sampled is not None:
-        rows = np.flatnonzero(sampled.arc == i - 1)
-        if rows.size and abs(sampled.t[rows[-1]] - plan.burns[i - 1].epoch) < 1e-3:
-            return sampled.y[rows[-1], 3:]
-    if abs(plan.burns[i - 1].epoch - plan.start_epoch) < 1e-3:
-        return np.asarray(plan.start_state[3:], dtype=float)
-    return None
-
-
-def _clearances(sampled, problem) -> list[ConstraintRow]:
-    """Closest approach to Earth (before the final descent to the arrival) and to the Moon."""
-    from ..constants import R_EARTH, R_MOON
-
-    alt = np.linalg.norm(sampled.y[:, :3], axis=1) - R_EARTH
-    end = alt.size
-    if sampled.arrival is not None:  # drop the final, monotonic descent to the arrival
-        while end > 1 and alt[end - 2] > alt[end - 1]:
-            end -= 1
-    rows = [_row("closest approach to Earth (before the final descent)",
-                 float(alt[:end].min()) if end > 1 else None, problem.min_altitude_km, None, "km")]
-    if sampled.moon_r is not None:
-        alt_m = np.linalg.norm(sampled.y[:, :3] - sampled.moon_r, axis=1) - R_MOON
-        rows.append(_row("closest approach to the Moon", float(alt_m.min()), problem.min_altitude_km, None, "km"))
-    return rows
+    try:
+        return list(recheck(plan, problem).constraints)
+    except PlanFileError:
+        return []
 
 
 # ------------------------------------------------------------------------------------------------
@@ -151,6 +53,40 @@ def _table(header, rows) -> list[str]:
 def _short_json(v, limit=120):
     text = v if isinstance(v, str) else json.dumps(v, default=str)
     return text if len(text) <= limit else text[:limit - 3] + "..."
+
+
+def _search_section(plan, problem) -> list[str]:
+    """The global search: how many seeds, which starts were solved, where the answer sits."""
+    search = (plan.solver or {}).get("search")
+    if not search:
+        return []
+    seeds = search.get("seeds", [])
+    ok = [s for s in seeds if s.get("screened_dv_mps") is not None]
+    L = ["## Global search", "",
+         f"{len(seeds)} seeds screened (burn epochs across each window, the Moon passed on either side, the "
+         f"return passing Earth either way); {len(ok)} met the perilune and arrival ranges within the caps"
+         + (f", cheapest {min(s['screened_dv_mps'] for s in ok):.3f} m/s" if ok else "")
+         + f". Screening {search.get('screen_s', 0):.1f} s. The figure `search.png` shows Δv against burn epoch.", ""]
+    starts = search.get("starts", [])
+    if starts:
+        L += _table(["start", "burn", "seed epoch (TDB)", "family", "screened m/s", "outcome", "Δv m/s", "chosen"], [
+            [i + 1, s["burn"], format_epoch(s["epoch_tdb_s"], 0), s["family"], _fmt(s.get("screened_dv_mps")),
+             s.get("status", "—"), _fmt(s.get("total_dv_mps")), "**yes**" if search.get("chosen") == i else ""]
+            for i, s in enumerate(starts)])
+    for j, b in enumerate(problem.burns):
+        burn = plan.burns[j] if j < len(plan.burns) else None
+        if burn is None or burn.dv_mps == 0.0:
+            continue
+        for edge, word in ((b.window[0], "opens"), (b.window[1], "closes")):
+            if abs(burn.epoch - edge) <= 1.0:
+                L += [f"Burn {j + 1} sits where its window {word}: a wider window may be cheaper.", ""]
+    failed = {}
+    for s in seeds:
+        if s.get("screened_dv_mps") is None:
+            failed[s["outcome"]] = failed.get(s["outcome"], 0) + 1
+    if failed:
+        L += ["Seeds that did not meet the ranges: " + "; ".join(f"{n} x {why}" for why, n in failed.items()) + ".", ""]
+    return L
 
 
 def report_markdown(plan, problem, *, sampled=None, figures=(), files=(), notes=(), model_name=None) -> str:
@@ -210,14 +146,18 @@ def report_markdown(plan, problem, *, sampled=None, figures=(), files=(), notes=
     L += _table(["event", "source", "epoch (TDB)", "altitude km", "flight-path deg", "inclination deg",
                  "speed km/s"], rows) if rows else ["No events.", ""]
 
-    _, source = _events(plan, sampled)
-    L += ["## Constraints", "", f"Values from the {source}; *active* means at a bound within "
-          "the tolerance shown.", ""]
+    rows_c = constraint_rows(plan, problem, sampled)
+    L += ["## Constraints", "", "Every constraint of the problem, judged on the independent re-propagation "
+          "(the same rows decide the verdict); *active* means at a bound within the tolerance shown.", ""]
     L += _table(["constraint", "value", "lower", "upper", "unit", "within", "state"], [
         [c.name, _fmt(c.value, c.unit), _fmt(c.lo, c.unit), _fmt(c.hi, c.unit), "epoch" if c.unit == "s" else c.unit,
          f"{c.tol * {'d': 86400.0, 'h': 3600.0}[c.unit]:g} s" if c.unit in ("d", "h") else f"{c.tol:g} {c.unit}",
-         f"**{c.state}**" if c.state in ("active", "violated") else c.state]
-        for c in constraint_rows(plan, problem, sampled)])
+         f"**{c.state}**" if c.state in ("active", "violated", "missing") else c.state]
+        for c in rows_c]) if rows_c else ["No constraint could be evaluated (the burns cannot be re-propagated).", ""]
+    defaults = [c for c in rows_c if c.name.startswith("time to arrival (default") and c.state == "active"]
+    if defaults:
+        L += [f"The default longest return ({defaults[0].hi:g} days; no arrival window or `max_duration_days` "
+              "given) binds: a longer allowed return may be cheaper.", ""]
 
     L += ["## Verification", ""]
     v = plan.verification
@@ -232,6 +172,8 @@ def report_markdown(plan, problem, *, sampled=None, figures=(), files=(), notes=
             for k, val in v.residuals.items()])
         if v.violations:
             L += ["Violations:", ""] + [f"- {x}" for x in v.violations] + [""]
+
+    L += _search_section(plan, problem)
 
     pr = plan.solver.get("primer") if plan.solver else None
     if pr:
