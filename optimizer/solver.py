@@ -32,6 +32,7 @@ from .problem import Problem
 from .propagate import propagate
 from .seed import circumlunar
 from .transcription import Transcription, is_injection
+from .events import LUNAR_SPHERE_KM, lunar_encounter
 from .verify import arrival_record, make_burn, perilune_record, verify
 
 GUESS_RTOL = 1e-9
@@ -112,9 +113,11 @@ def sample_phase(model, arc, t_a, t_b, n):
 
 
 def _coast(model, t0, y0, t1, events=("perilune", "perigee", "entry", "impact_earth", "impact_moon"),
-           entry_radius=None, terminal=()):
-    return propagate(model, t0, y0, t1, events=events, entry_radius=entry_radius, terminal=terminal,
-                     rtol=GUESS_RTOL, atol=1e-9)
+           entry_radius=None, terminal=(), perilune_within=None):
+    arc = propagate(model, t0, y0, t1, events=events, entry_radius=entry_radius, terminal=terminal,
+                    rtol=GUESS_RTOL, atol=1e-9, perilune_within=perilune_within)
+    arc.model = model  # for choosing the encounter among the arc's perilunes
+    return arc
 
 
 def _return_momentum(model, t_peri, y_peri):
@@ -137,7 +140,13 @@ def _target_radius(problem, model):
 
 
 def _first_perilune(arc, after):
-    return next((e for e in arc.events if e.name == "perilune" and e.t > after), None)
+    """The lunar encounter's perilune after epoch ``after``: the closest approach to the Moon, not
+    the first local minimum of lunar distance (:func:`optimizer.events.lunar_encounter`)."""
+    model = getattr(arc, "model", None)
+    later = [e for e in arc.events if e.t > after]
+    if model is None:
+        return next((e for e in later if e.name == "perilune"), None)
+    return lunar_encounter(later, model.moon_position)
 
 
 class _Encounter:
@@ -146,7 +155,8 @@ class _Encounter:
     when the pass would hit the Moon) and the return's geocentric angular momentum."""
 
     def __init__(self, model, t_burn, y, t_end):
-        arc = _coast(model, t_burn, y, t_end, events=("perilune",), terminal=("perilune",))
+        arc = _coast(model, t_burn, y, t_end, events=("perilune",), terminal=("perilune",),
+                     perilune_within=LUNAR_SPHERE_KM)
         self.peri = _first_perilune(arc, t_burn)
         if self.peri is None:
             return
@@ -228,7 +238,7 @@ def linear_targeting(problem, model, t_burn, y_burn, t_end, direction="free", ca
         raise SolveError("the coast never passes the Moon, so no guess can be made from it; "
                          "start closer to the lunar encounter or give a warm start")
     margin = min(50.0, 0.2 * (hi - lo))
-    alt_goal = float(np.clip(first.alt, lo + margin, min(hi, lo + 2000.0) - margin))
+    alt_goal = float(np.clip(first.alt, lo + margin, hi - margin))
     r_p = model.moon.radius + alt_goal
     h_moon_goal = r_p * math.sqrt(max(first.v_inf2, 0.0) + 2 * model.gm_moon / r_p)
     w_moon = h_moon_goal * 1e-3  # 0.1 % of the momentum: ~1 km of perilune
@@ -715,6 +725,18 @@ def _path_guess(problem, model, tr, t0, y0, burns, start=None):
     return tr.guess_vector(states, [dv for _, dv in burns], slens, start)
 
 
+def _screen_finds_seeds(problem, model) -> bool:
+    """Whether the global layer's screen finds any seed of ``problem`` inside its caps (the
+    screen is remembered, so the solve that follows does not repeat it)."""
+    from .search import screened
+
+    if is_injection(problem):  # the search screens state starts only
+        return True
+    model = model or build_model(problem.model, *model_span(problem))
+    seeds, _ = screened(problem, model)
+    return any(s.dv is not None for s in seeds)
+
+
 def _with_zero_burns(problem, model, first, burns, kept, steps, start):
     """The verified plan ``first`` of the problem without the held burns, as a plan of the whole
     ``problem``: the held burns at zero at their chosen epochs (the path, and so its verification,
@@ -760,25 +782,31 @@ def _solve_staged(problem, model, say, ipopt_options, stages, t_start, continued
     """
     own = None if continued else model  # the model each stage's solve is given
     usable = _usable_burns(problem)
-    for alone in usable:  # the first listed usable burn alone, then the next if that fails
+    alone_plans = []  # (plan, its transcription, held burns, kept burns, the burn alone)
+    for alone in usable:  # each usable burn alone; the cheapest verified one goes on
         held = [j for j in usable if j != alone]
         kept = [j for j in range(len(problem.burns)) if j not in held]
         reduced = replace(problem, burns=tuple(problem.burns[j] for j in kept))
-        say(f"several burns: solving with burn {alone + 1} alone first "
+        if alone_plans and not _screen_finds_seeds(reduced, model if own is None else own):
+            say(f"burn {alone + 1} alone: no screened seed meets the ranges within its cap; not solved")
+            continue
+        say(f"several burns: solving with burn {alone + 1} alone "
             f"(burn(s) {', '.join(str(j + 1) for j in held)} held at zero)")
-        first = solve(reduced, model=own, progress=say, ipopt_options=ipopt_options, _staged=True)
-        tr1 = getattr(first, "_transcription", None)
-        if first.status == "verified" and tr1 is not None:
-            break
-        say(f"burn {alone + 1} alone: {first.status}")
-    else:
+        plan = solve(reduced, model=own, progress=say, ipopt_options=ipopt_options, _staged=True)
+        tr1 = getattr(plan, "_transcription", None)
+        say(f"burn {alone + 1} alone: {plan.status}, {plan.total_dv_mps:.4f} m/s")
+        if plan.status == "verified" and tr1 is not None:
+            alone_plans.append((plan, tr1, held, kept, alone))
+    if not alone_plans:
         say("no burn alone gives a verified plan; solving all burns together")
         return solve(problem, model=own, progress=say, ipopt_options=ipopt_options, _staged=True)
+    first, tr1, held, kept, alone = min(alone_plans, key=lambda a: a[0].total_dv_mps)
+    alone_record = [{"burn": a[4] + 1, "total_dv_mps": a[0].total_dv_mps} for a in alone_plans]
     scan = primer_scan(tr1, first.warm["x"], first.warm["lam_g"])
     epochs = {j: first.burns[i].epoch for i, j in enumerate(kept)}
     t_peri = first.events[0].epoch
     picks = {j: _release_candidates(problem, epochs, t_peri, scan, j) for j in held}
-    record = {"held_burns": [j + 1 for j in held], "tolerance": PRIMER_TOL,
+    record = {"held_burns": [j + 1 for j in held], "tolerance": PRIMER_TOL, "each_burn_alone": alone_record,
               "max_primer": {str(j + 1): (None if c is None else round(c[1], 6)) for j, c in picks.items()},
               "without_held_dv_mps": first.total_dv_mps}
     start = {k: float(first.warm["x"][tr1.v.index[k].start]) for k in ("tau_injection", "raan", "arg_latitude")
@@ -920,10 +948,47 @@ def _solve_impl(problem, warm, progress, model, ipopt_options, _staged) -> Plan:
         x0 = relayout(Transcription(along, model, steps, problem.mesh.segments), first.warm["x"], tr)
     else:
         tr = Transcription(problem, model, steps, problem.mesh.segments)
+        searched = record = None
+        if not is_injection(problem) and problem.objective.kind in ("min-dv", "weighted"):
+            searched, record = _global_search(problem, model, tr, say, ipopt_options, stages, t_start)
+            if searched is not None and searched.verified:
+                return searched
+            say("search: no start gave a verified plan; falling back on the targeted guess")
         say("initial guess: targeted coast")
-        states, dvs, slens, start = initial_guess(problem, model, tr)
+        try:
+            states, dvs, slens, start = initial_guess(problem, model, tr)
+        except SolveError:
+            if searched is not None:
+                return searched
+            raise
         x0 = tr.guess_vector(states, dvs, slens, start)
+        plan = _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start)
+        if searched is not None or record is not None:
+            plan.solver["search"] = {**(record or {}), "fallback": plan.status}
+        return plan
     return _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start)
+
+
+def _global_search(problem, model, tr, say, ipopt_options, stages, t_start):
+    """The global layer (:mod:`optimizer.search`): screened seeds over every burn window, the most
+    promising solved from their own paths.  Returns (the cheapest verified plan, else the last
+    plan tried, else None; the search record), the record also under ``plan.solver["search"]``."""
+    from .search import global_solve
+
+    st = problem.start
+    tried = []
+
+    def solve_from(burns):
+        x0 = _path_guess(problem, model, tr, st.epoch, np.asarray(st.state, dtype=float), burns)
+        plan = _solve_loop(problem, model, tr, x0, None, say, ipopt_options, stages, t_start)
+        tried.append(plan)
+        return plan
+
+    best, record = global_solve(problem, model, solve_from, say)
+    plan = best if best is not None else (tried[-1] if tried else None)
+    if plan is not None:
+        plan.solver["search"] = record
+    return plan, record
 
 
 def _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start) -> Plan:

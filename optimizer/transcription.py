@@ -233,7 +233,10 @@ class Transcription:
             y = np.asarray(st.state, dtype=float)
             self.z_start = ca.DM(np.r_[y[:3] / sc.lu, y[3:] / sc.vu, (st.epoch - sc.t_ref) / sc.tu])
             return
-        lo, hi = ((t - sc.t_ref) / sc.tu for t in st.epoch_window)
+        # the injection happens inside both the parking orbit's window and its own burn window
+        t_lo = max(st.epoch_window[0], self.problem.burns[0].window[0])
+        t_hi = min(st.epoch_window[1], self.problem.burns[0].window[1])
+        lo, hi = ((t - sc.t_ref) / sc.tu for t in (t_lo, max(t_lo, t_hi)))
         tau = v.var("tau_injection", (1, 1), lo, hi, 0.5 * (lo + hi))
         raan_lo, raan_hi = (-4 * math.pi, 4 * math.pi) if st.raan_window_deg is None else \
             (math.radians(a) for a in st.raan_window_deg)
@@ -326,6 +329,10 @@ class Transcription:
         rho = lambda alt: ((model.moon.radius + alt) / sc.lu) ** 2  # noqa: E731
         v.con("perilune_radial", ca.dot(d, w) / ca.norm_2(d), 0.0, 0.0)
         v.con("perilune_altitude", ca.sumsqr(d), rho(lo), rho(hi))
+        # a minimum of distance, not an apolune: v^2 >= mu / r there (two-body: r v^2 / mu > 1
+        # exactly when r < a, true at a perilune and false at an apolune)
+        mu_m = model.gm_moon * sc.tu**2 / sc.lu**3
+        v.con("perilune_minimum", ca.sumsqr(w) * ca.norm_2(d) / mu_m, 1.0, np.inf)
         self.perilune_phase = p.index
 
     def _add_arrival(self, v):
@@ -342,6 +349,8 @@ class Transcription:
             lo, hi = ((model.earth.radius + a) / sc.lu for a in ret.perigee_alt_km)
             v.con("perigee_radial", ca.dot(r, vel) / ca.norm_2(r), 0.0, 0.0)
             v.con("perigee_radius", ca.norm_2(r), lo, hi)
+            mu_e = model.gm_earth * sc.tu**2 / sc.lu**3
+            v.con("perigee_minimum", ca.sumsqr(vel) * ca.norm_2(r) / mu_e, 1.0, np.inf)
         if ret.inclination_deg is not None:
             hv = ca.cross(r, vel)
             lo, hi = (math.cos(math.radians(a)) for a in ret.inclination_deg)

@@ -3,7 +3,8 @@
 * ``path-inertial.png``: the path in the Earth-centred inertial x-y plane (ICRF axes);
 * ``path-rotating.png``: the path in the Earth-Moon rotating frame (x towards the Moon);
 * ``altitude.png``: altitude above Earth (and the Moon) against time, log scale;
-* ``burns.png``: Δv of each burn beside its cap.
+* ``burns.png``: Δv of each burn beside its cap;
+* ``search.png``: the global search's landscape (screened Δv against burn epoch, solved starts).
 
 Markers: burns are upward triangles, the perilune a diamond, the arrival a square; the path is
 drawn from the independent re-propagation.
@@ -25,7 +26,7 @@ from ..constants import CAUTION  # noqa: E402
 from ..frames import inertial_to_rotating  # noqa: E402
 from ..timescales import format_epoch  # noqa: E402
 
-__all__ = ["write_figures", "PALETTE", "FIGURES"]
+__all__ = ["write_figures", "write_search_figure", "PALETTE", "FIGURES"]
 
 #: Neutral palette: ink, path, faint guide lines, bodies, and three marker colours.
 PALETTE = {"ink": "#2b2f33", "path": "#3f5f7f", "guide": "#b9c0c7", "earth": "#8ea9bf",
@@ -34,7 +35,8 @@ PALETTE = {"ink": "#2b2f33", "path": "#3f5f7f", "guide": "#b9c0c7", "earth": "#8
 FIGURES = {"path-inertial.png": "Path, Earth-centred inertial (ICRF x-y)",
            "path-rotating.png": "Path, Earth-Moon rotating frame",
            "altitude.png": "Altitude over time",
-           "burns.png": "Δv per burn"}
+           "burns.png": "Δv per burn",
+           "search.png": "Global search: screened Δv against burn epoch, solved starts"}
 
 
 def _style(ax, title):
@@ -157,3 +159,42 @@ def write_figures(sampled, plan, problem, out_dir, *, earth_radius_km: float, mo
     _save(fig, out_dir / "burns.png", plan, model_name)
     written.append("burns.png")
     return written
+
+
+def write_search_figure(plan, problem, out_dir, *, model_name: str) -> list[str]:
+    """``search.png``: screened Δv against burn epoch for every seed family of the global search,
+    the solved starts and the chosen answer, with each burn window's bounds (written only when
+    the plan records a search)."""
+    search = (plan.solver or {}).get("search")
+    if not search or not search.get("seeds"):
+        return []
+    t0 = plan.start_epoch
+    fig, ax = plt.subplots(figsize=(7.0, 4.2))
+    families = sorted({s["family"] for s in search["seeds"]})
+    shades = ["#3f5f7f", "#8ea9bf", "#b8862d", "#9c4a3c", "#5d7f62", "#6b7177"]
+    for k, fam in enumerate(families):
+        pts = sorted((s["epoch_tdb_s"], s["burn"], s["screened_dv_mps"]) for s in search["seeds"]
+                     if s["family"] == fam and s["screened_dv_mps"] is not None)
+        for burn in sorted({p[1] for p in pts}):
+            xs = [(p[0] - t0) / 3600.0 for p in pts if p[1] == burn]
+            ys = [p[2] for p in pts if p[1] == burn]
+            ax.plot(xs, ys, "-o", color=shades[k % len(shades)], ms=3.5, lw=0.8,
+                    label=f"screened, burn {burn}, {fam}")
+    for i, s in enumerate(search.get("starts", [])):
+        dv = s.get("total_dv_mps")
+        if dv is None:
+            continue
+        x = (s["epoch_tdb_s"] - t0) / 3600.0
+        chosen = search.get("chosen") == i
+        ax.plot(x, dv, "s", ms=8 if chosen else 6, mfc=PALETTE["arrival"] if chosen else "none",
+                mec=PALETTE["arrival"], label="solved start (chosen filled)" if i == 0 else None)
+    for b in problem.burns:
+        for edge in b.window:
+            ax.axvline((edge - t0) / 3600.0, color=PALETTE["guide"], lw=0.8, ls=":")
+    ax.set_xlabel("burn epoch, hours after the start (TDB)", color=PALETTE["ink"], fontsize=8)
+    ax.set_ylabel("Δv, m/s", color=PALETTE["ink"], fontsize=8)
+    ax.set_yscale("log")
+    _style(ax, f"{plan.name}: global search, Δv against burn epoch (dotted: burn windows)")
+    ax.legend(fontsize=6, frameon=False, loc="best")
+    _save(fig, Path(out_dir) / "search.png", plan, model_name)
+    return ["search.png"]

@@ -20,7 +20,7 @@ from .. import __version__
 from ..constants import CAUTION
 from ..problem_file import dumps_toml, problem_to_dict
 from ..timescales import format_epoch
-from .figures import FIGURES, write_figures
+from .figures import FIGURES, write_figures, write_search_figure
 from .oem import oem_text
 from .report import report_markdown
 from .sampling import plan_model, sample_plan
@@ -146,7 +146,8 @@ def write_plot_files(plan, problem, out_dir, *, model=None, sampled=None) -> lis
     moon = getattr(model, "moon", None)
     return write_figures(sampled, plan, problem, out_dir, earth_radius_km=model.earth.radius,
                          moon_radius_km=moon.radius if moon is not None else None,
-                         model_name=_model_name(plan, problem))
+                         model_name=_model_name(plan, problem)) + \
+        write_search_figure(plan, problem, out_dir, model_name=_model_name(plan, problem))
 
 
 def _write_contents(plan, problem, folder: Path, model, created):

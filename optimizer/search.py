@@ -1,0 +1,557 @@
+"""The global layer above the local NLP: many seeds, cheap screening, a few IPOPT starts.
+
+One local NLP solve finds the optimum of the basin its starting point lies in; a free burn epoch
+gives a Δv landscape with several basins (the two ends of a window, a return passing either side
+of Earth, the Moon passed on either side).  This module:
+
+1. **Seeds** every usable burn at :data:`EPOCHS` epochs spread over its window (both ends
+   included; outbound burns before the ballistic perilune, return burns after it), in each
+   *family*: the lunar pass on the same or the other side of the Moon as the ballistic path
+   (outbound burns only) and the return passing Earth in the same or the opposite sense.
+2. **Screens** each seed by damped least-norm targeting (:func:`target`): the burn that puts the
+   perilune inside its altitude range and the return inside its arrival corridor, measured on the
+   independent propagator through two smooth quantities (the incoming selenocentric angular
+   momentum along the pass's normal, which fixes the perilune radius, and the geocentric angular
+   momentum of the return along its normal, which fixes the conic's entry flight-path angle or
+   perigee).  Steps are least-norm solutions of the linearised ranges inside a trust region, so
+   they converge from a ballistic return 30 degrees too steep as well as from a near miss.
+3. **Solves** the lowest local minima of the screened Δv against epoch (one per basin, cheapest
+   first) with the local NLP, and keeps the cheapest verified plan.  A start is skipped when its
+   screened Δv is far above the best verified answer (:data:`SKIP_RATIO`).
+
+Every seed and start is recorded (``plan.solver["search"]``) so the report can show the landscape.
+Imports the propagator and the guess helpers of the solver; never the other way round except
+through :func:`global_solve`.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass
+
+import numpy as np
+
+from .events import RETURN_RADIUS_KM, encounter_radius
+from .propagate import propagate
+
+#: Seed epochs per burn window (both ends included).
+EPOCHS = 9
+#: Screening propagation tolerances (relative; absolute in km, km/s).
+SCREEN_RTOL, SCREEN_ATOL = 1e-8, 1e-8
+#: Largest number of local NLP starts per problem.
+MAX_STARTS = 3
+#: A start whose screened Δv exceeds SKIP_RATIO x the best verified Δv + SKIP_MPS is not solved.
+SKIP_RATIO, SKIP_MPS = 1.5, 1.0
+#: Targeting iterations per seed, of which at most POLISH_ITERS lower the norm of a point that
+#: already meets the ranges (the local NLP polishes; screening only ranks), and the first
+#: trust-region radius (km/s).
+TARGET_ITERS, POLISH_ITERS, FIRST_RADIUS = 25, 6, 0.02
+#: Targeting iterations for the families other than the ballistic path's own side and sense.
+OTHER_ITERS = 15
+#: Finite-difference step of the targeting Jacobian (km/s); targeting stops on a feasible point
+#: whose next least-norm step is shorter than STOP_STEP (km/s).
+FD_STEP, STOP_STEP = 1e-4, 1e-5
+#: Targeting gives up when its trust region shrinks below STALL_RADIUS (km/s); a point whose
+#: violation is at most NEAR units (see ``target``) still seeds the NLP.
+STALL_RADIUS, NEAR = 1e-5, 5.0
+_TRACE = False
+HOUR = 3600.0
+
+
+@dataclass
+class Seed:
+    """One screened seed: burn ``burn`` (index into the problem's burns) at ``epoch``."""
+
+    burn: int
+    epoch: float
+    family: str
+    dv: np.ndarray | None = None  # km/s, ICRF
+    outcome: str = ""
+    screen_s: float = 0.0
+
+    @property
+    def dv_mps(self) -> float | None:
+        return None if self.dv is None else float(np.linalg.norm(self.dv) * 1000.0)
+
+    def record(self) -> dict:
+        return {"burn": self.burn + 1, "epoch_tdb_s": self.epoch, "family": self.family,
+                "screened_dv_mps": self.dv_mps, "outcome": self.outcome, "screen_s": round(self.screen_s, 3)}
+
+
+# -- measurement --------------------------------------------------------------------------------
+class _Pass:
+    """The smooth quantities targeting measures on a coast that starts just after a burn: the
+    selenocentric angular momentum and energy at the encounter's perilune (``|h| = r v`` there, so
+    the perilune radius follows exactly from them), and the geocentric angular momentum and energy
+    where the return first meets Earth (the entry crossing, or the return perigee), from which the
+    conic's flight-path angle at the interface or its perigee follow."""
+
+    def __init__(self, model, t0, y0, t_end, r_enc, moon_needed, problem):
+        self.ok = False
+        if moon_needed:
+            arc = propagate(model, t0, y0, t_end, events=("perilune",), terminal=("perilune",),
+                            perilune_within=r_enc, rtol=SCREEN_RTOL, atol=SCREEN_ATOL)
+            peri = arc.first("perilune")
+            if peri is None:
+                return
+            d, w = peri.y[:3] - model.moon_position(peri.t), peri.y[3:] - model.moon_velocity(peri.t)
+            self.h_moon = np.cross(d, w)
+            self.energy_moon = float(0.5 * w @ w - model.gm_moon / np.linalg.norm(d))
+            t_out, y_out = peri.t, peri.y
+        else:
+            self.h_moon = self.energy_moon = None
+            t_out, y_out = t0, y0
+        entry = problem.arrival.target == "entry"
+        if t_end > t_out:
+            arc = propagate(model, t_out, y_out, t_end, events=("perigee", "entry") if entry else ("perigee",),
+                            terminal=("perigee", "entry"), entry_radius=problem.arrival.entry_radius_km,
+                            perigee_within=RETURN_RADIUS_KM, rtol=SCREEN_RTOL, atol=SCREEN_ATOL)
+            y_ret, t_ret = arc.y[:, -1], float(arc.t[-1])
+            reached = arc.status != "completed"
+        else:
+            y_ret, t_ret, reached = y_out, t_out, False
+        r, v = y_ret[:3], y_ret[3:]
+        self.h_earth = np.cross(r, v)
+        self.energy = float(0.5 * v @ v - model.gm_earth / np.linalg.norm(r))
+        # when the return meets Earth only after the latest epoch, its arrival is estimated by the
+        # conic's time to perigee (smooth in the burn, so the arrival window can be targeted)
+        self.arrival = t_ret if reached else t_ret + _time_to_perigee(r, v, model.gm_earth)
+        self.ok = True
+
+
+def _time_to_perigee(r, v, mu) -> float:
+    """Two-body time (s) from the state ``(r, v)`` to the next perigee (inf when it never comes)."""
+    rn = float(np.linalg.norm(r))
+    energy = 0.5 * float(v @ v) - mu / rn
+    e_vec = ((float(v @ v) - mu / rn) * r - float(r @ v) * v) / mu
+    e = float(np.linalg.norm(e_vec))
+    if e < 1e-9:
+        return 0.0
+    cos_nu = float(np.clip(e_vec @ r / (e * rn), -1.0, 1.0))
+    nu = math.acos(cos_nu)
+    if float(r @ v) < 0:
+        nu = 2 * math.pi - nu  # inbound
+    if energy < 0:
+        a = -mu / (2 * energy)
+        big_e = 2 * math.atan2(math.sqrt(1 - e) * math.sin(nu / 2), math.sqrt(1 + e) * math.cos(nu / 2))
+        mean = (big_e - e * math.sin(big_e)) % (2 * math.pi)
+        return (2 * math.pi - mean) / math.sqrt(mu / a**3)
+    if float(r @ v) >= 0:
+        return math.inf  # outbound on an open orbit
+    a = mu / (2 * energy)
+    t = math.sqrt((e - 1) / (e + 1)) * math.tan(nu / 2)
+    if abs(t) >= 1.0:
+        return math.inf
+    big_f = 2 * math.atanh(t)
+    return -(e * math.sinh(big_f) - big_f) / math.sqrt(mu / a**3)
+
+
+def _arrival_window(problem):
+    """Earliest and latest arrival epochs: the window, the longest duration, the latest epoch."""
+    ret = problem.arrival
+    lo, hi = -math.inf, problem.latest_epoch()
+    if ret.epoch_window is not None:
+        lo, hi = max(lo, ret.epoch_window[0] + 600.0), min(hi, ret.epoch_window[1] - 600.0)
+    if ret.max_duration_days is not None:
+        hi = min(hi, problem.start_epoch + ret.max_duration_days * 86400.0 - 600.0)
+    return lo, hi
+
+
+def _h_moon_range(problem, model, energy):
+    """Range of the perilune's angular momentum ``r v`` for a perilune inside its range (with a
+    small margin), at the selenocentric energy measured there."""
+    lo, hi = problem.lunar.altitude_km
+    margin = min(10.0, 0.1 * (hi - lo))
+    rs = [model.moon.radius + a for a in (lo + margin, hi - margin)]
+    return tuple(r * math.sqrt(max(2.0 * (energy + model.gm_moon / r), 1e-12)) for r in rs)
+
+
+def _h_earth_range(problem, model, energy):
+    """Range of the return's angular momentum that puts its conic inside the arrival corridor."""
+    ret, mu = problem.arrival, model.gm_earth
+    if ret.target == "entry":
+        r = ret.entry_radius_km
+        v = math.sqrt(max(2.0 * (energy + mu / r), 1e-12))
+        g_lo, g_hi = ret.flight_path_deg
+        margin = min(0.02, 0.1 * (g_hi - g_lo))
+        # steeper (more negative) angle -> smaller momentum
+        return r * v * math.cos(math.radians(g_lo + margin)), r * v * math.cos(math.radians(g_hi - margin))
+    lo, hi = ret.perigee_alt_km
+    margin = min(1.0, 0.1 * (hi - lo))
+    rp = [model.earth.radius + a for a in (lo + margin, hi - margin)]
+    return tuple(x * math.sqrt(max(2.0 * (energy + mu / x), 1e-12)) for x in rp)
+
+
+# -- the least-norm step --------------------------------------------------------------------------
+def _least_norm_step(c, a, g, lo, hi, radius, nonneg):
+    """Step ``d`` of least ``|c + d|`` with ``lo <= g + a d <= hi`` (rows of ``a``), cut to
+    ``|d| <= radius``; rows that cannot all be met are met in the least-squares sense.
+    Returns (the cut step, the uncut step)."""
+    m = a.shape[0]
+    best = None
+    for pattern in np.ndindex(*(3,) * m):  # each row inactive (0), at its lower (1) or upper (2) bound
+        rows = [i for i in range(m) if pattern[i]]
+        if rows:
+            ar = a[rows]
+            target = np.array([lo[i] if pattern[i] == 1 else hi[i] for i in rows]) - g[rows]
+            if not np.all(np.isfinite(target)):
+                continue
+            gram = ar @ ar.T
+            if np.linalg.matrix_rank(gram) < len(rows):
+                continue
+            d = ar.T @ np.linalg.solve(gram, target + ar @ c) - c
+        else:
+            d = -c
+        if nonneg and np.any(c + d < -1e-15):
+            continue
+        val = g + a @ d
+        if np.all(val >= lo - 1e-9 * np.abs(lo) - 1e-12) and np.all(val <= hi + 1e-9 * np.abs(hi) + 1e-12):
+            if best is None or np.linalg.norm(c + d) < np.linalg.norm(c + best):
+                best = d
+    if best is None:  # infeasible linearisation: least-squares towards the nearest bounds
+        best = np.linalg.lstsq(a, np.clip(g, lo, hi) - g, rcond=None)[0]
+        best = np.nan_to_num(best)
+        if nonneg:
+            best = np.maximum(c + best, 0.0) - c
+    size = np.linalg.norm(best)
+    return (best if size <= radius else best * (radius / size)), best
+
+
+# -- targeting ------------------------------------------------------------------------------------
+def target(problem, model, t_b, y_b, t_end, *, direction="free", leg="outbound", moon_side=1.0,
+           earth_sense=1.0, cap_kms=np.inf, iters=TARGET_ITERS, start=None):
+    """Least-norm Δv (km/s, ICRF) at ``t_b`` from the pre-burn state ``y_b`` for a perilune inside
+    its range on the given side of the Moon and a return inside the arrival corridor in the given
+    sense.
+
+    The perilune is held through the selenocentric angular momentum at the perilune, the return
+    through the geocentric one where it meets Earth; each is a range on its component along a
+    normal: the current momentum's own direction (so the constraint is on its size, and the plane
+    of the pass or return may turn freely) once the momentum lies on the asked side, else the
+    fixed normal of the path without a burn, reversed (``moon_side`` / ``earth_sense`` = -1: the
+    Moon passed on its other side, the return passing Earth the other way), which drives the
+    momentum through zero to that side.
+
+    ``start`` = (dv, jacobian, reference normals) of a neighbouring seed continues from its answer.
+    Returns (dv or None, why, state for ``start``).
+    """
+    if direction == "free":
+        basis, nonneg = np.eye(3), False
+    else:
+        v = y_b[3:] / np.linalg.norm(y_b[3:])
+        basis, nonneg = (v if direction == "along" else -v)[:, None], True
+    moon = leg == "outbound"
+    r_enc = encounter_radius(problem)
+
+    def measure(c):
+        y = y_b.copy()
+        y[3:] += basis @ c
+        p = _Pass(model, t_b, y, t_end, r_enc, moon, problem)
+        return p if p.ok else None
+
+    t_lo, t_hi = _arrival_window(problem)
+
+    def vec(p):
+        return np.r_[p.h_moon if moon else [], p.h_earth, p.arrival]
+
+    jac, fresh = None, False
+    c = np.zeros(basis.shape[1])
+    if start is not None:
+        c = np.linalg.lstsq(basis, start[0], rcond=None)[0]
+        c = np.maximum(c, 0.0) if nonneg else c
+        jac = start[1] if start[1] is not None and start[1].shape[1] == len(c) else None
+        refs = start[2]
+    p = measure(c)
+    if p is None:
+        return None, "the coast from this burn never passes the Moon", None
+    if start is None:
+        h = vec(p)
+        refs = [h[3 * k:3 * k + 3] / max(np.linalg.norm(h[3 * k:3 * k + 3]), 1e-9) for k in range(len(h) // 3)]
+    if not np.isfinite(p.arrival):
+        return None, "the coast from this burn never comes back to Earth", None
+    signs = ([moon_side] if moon else []) + [earth_sense]
+
+    def projector(h):
+        """Rows picking, from the momentum vector(s), the component each constraint holds."""
+        rows = np.zeros((len(refs) + 1, len(h)))
+        for k, (ref, sign) in enumerate(zip(refs, signs)):
+            hk = h[3 * k:3 * k + 3]
+            own = hk / max(np.linalg.norm(hk), 1e-9)
+            rows[k, 3 * k:3 * k + 3] = own if sign * float(own @ ref) > 0 else sign * ref
+        rows[-1, -1] = 1.0  # the arrival epoch
+        return rows
+
+    def ranges(p):
+        lo, hi = [], []
+        if moon:
+            a, b = _h_moon_range(problem, model, p.energy_moon)
+            lo.append(a), hi.append(b)
+        a, b = _h_earth_range(problem, model, p.energy)
+        lo.append(a), hi.append(b)
+        return np.array(lo + [t_lo]), np.array(hi + [t_hi])
+
+    h = vec(p)
+    lo, hi = ranges(p)
+    # a unit of violation: 2 % of a range's width, at most 0.1 % of the momentum (about 1 km of
+    # perilune, 0.01 degree of a 1-degree entry corridor)
+    scale = np.maximum(np.minimum(1e-3 * np.abs(hi), 0.02 * (hi - lo)), 1e-9)
+    scale[-1] = 600.0  # the arrival epoch: ten minutes
+
+    def violation(g, lo, hi):
+        return float(np.sum((np.maximum(lo - g, 0.0) + np.maximum(g - hi, 0.0)) / scale))
+
+    viol = violation(projector(h) @ h, lo, hi)
+    radius = FIRST_RADIUS if start is None else max(FIRST_RADIUS, np.linalg.norm(c))
+    polish = 0  # iterations spent lowering the norm of an answer that already meets the ranges
+    for it in range(iters):
+        if viol <= 1.0:
+            polish += 1
+            if polish > POLISH_ITERS:
+                break
+        if jac is None:
+            fresh = True
+            jac = np.empty((len(h), len(c)))
+            for k in range(len(c)):
+                ck = c.copy()
+                ck[k] += FD_STEP
+                pk = measure(ck)
+                if pk is None:
+                    return None, "a nearby burn loses the lunar pass (targeting stopped)", None
+                jac[:, k] = (vec(pk) - h) / FD_STEP
+            if not np.all(np.isfinite(jac)):
+                return None, "a nearby burn's return never comes back to Earth", None
+        proj = projector(h)
+        d, full = _least_norm_step(c, proj @ jac, proj @ h, lo, hi, radius, nonneg)
+        if _TRACE:
+            print("  it", it, "c", np.linalg.norm(c) * 1000, "viol", viol, "d", np.linalg.norm(d) * 1000,
+                  "radius", radius)
+        if np.linalg.norm(full) < STOP_STEP and viol <= 1.0:
+            break
+        if np.linalg.norm(basis @ c) > 1.5 * cap_kms or (it >= 2 and np.linalg.norm(basis @ (c + full)) > 3.0 * cap_kms):
+            return None, f"over the burn's cap ({1000 * cap_kms:g} m/s)", None
+        trial = measure(c + d)
+        better = False
+        if trial is not None and np.isfinite(trial.arrival):
+            h_t = vec(trial)
+            lo_t, hi_t = ranges(trial)
+            v_t = violation(projector(h_t) @ h_t, lo_t, hi_t)
+            better = v_t < viol - 1e-9 or (v_t <= 1.0 and np.linalg.norm(c + d) < np.linalg.norm(c) - 1e-9)
+        if better:
+            fresh = False
+            jac = jac + np.outer(h_t - h - jac @ d, d) / float(d @ d)  # Broyden's update
+            c, h, lo, hi, viol = c + d, h_t, lo_t, hi_t, v_t
+            if viol <= 1.0:
+                jac = None  # polishing the norm on the corridor's edge: an exact Jacobian each step
+            if np.linalg.norm(d) >= 0.99 * radius:
+                radius *= 2.0
+        else:
+            radius = 0.5 * min(radius, np.linalg.norm(d))
+            if not fresh:
+                jac = None  # re-linearise where we stand (a fresh Jacobian only shrinks the region)
+            if radius < STALL_RADIUS:
+                break
+    if viol > NEAR:
+        return None, "targeting did not meet the perilune and arrival ranges", None
+    dv = basis @ c
+    if np.linalg.norm(dv) > cap_kms:
+        return None, f"over the burn's cap ({1000 * cap_kms:g} m/s)", None
+    return dv, "screened" if viol <= 1.0 else "screened (near the ranges: the NLP finishes)", (dv, jac, refs)
+
+
+# -- seeds ----------------------------------------------------------------------------------------
+def ballistic_path(problem, model, t_end):
+    """The coast with every burn at zero (the screen's pre-burn states), with its lunar encounter."""
+    st = problem.start
+    arc = propagate(model, st.epoch, np.asarray(st.state, float), t_end, events=("perilune",),
+                    terminal=(), perilune_within=encounter_radius(problem), rtol=SCREEN_RTOL, atol=SCREEN_ATOL)
+    peri = arc.first("perilune")
+    return arc, (None if peri is None else peri.t)
+
+
+def seed_epochs(problem, j, t0, t_peri, t_end, n=EPOCHS):
+    """``n`` epochs spread over burn ``j``'s usable window (both ends): outbound burns between the
+    start and an hour before the ballistic perilune, return burns between an hour after it and a
+    day before the latest epoch."""
+    b = problem.burns[j]
+    lo, hi = max(b.window[0], t0), min(b.window[1], t_end)
+    if b.leg == "outbound" and t_peri is not None:
+        hi = min(hi, t_peri - HOUR)
+    if b.leg == "return":
+        if t_peri is None:
+            return []
+        lo = max(lo, t_peri + HOUR)
+    if hi < lo:
+        return []
+    if hi - lo < 60.0:
+        return [0.5 * (lo + hi)]
+    return list(np.linspace(lo, hi, n))
+
+
+def screen(problem, model, say=lambda m: None) -> tuple[list[Seed], float | None]:
+    """Screen every usable burn alone (the others at zero) over its window in every family.
+
+    Within a family the epochs are swept in order, each seed continuing from its neighbour's
+    answer (Δv and Jacobian).  Families other than the ballistic path's own side and sense get a
+    tighter cap: :data:`SKIP_RATIO` x the cheapest seed so far plus 30 m/s.
+    Returns (seeds, ballistic perilune epoch or None)."""
+    t_end = problem.latest_epoch()
+    arc, t_peri = ballistic_path(problem, model, t_end)
+    seeds, cheapest = [], np.inf
+    for j, b in enumerate(problem.burns):
+        if b.max_dv_mps <= 0:
+            continue
+        families = [("same side, same sense", 1.0, 1.0), ("same side, opposite sense", 1.0, -1.0)]
+        if b.leg == "outbound":
+            families += [("other side, same sense", -1.0, 1.0), ("other side, opposite sense", -1.0, -1.0)]
+        epochs = seed_epochs(problem, j, problem.start.epoch, t_peri, t_end)
+        if not epochs:
+            continue
+
+        def capped():
+            """The burn's cap, or, once a seed met the ranges, what a useful start could cost."""
+            cap = b.max_dv_mps / 1000.0
+            return cap if not np.isfinite(cheapest) else min(cap, (SKIP_RATIO * cheapest + 30.0) / 1000.0)
+
+        def run(t_b, side, sense, cap, state):
+            y_b = np.asarray(arc.state(t_b), dtype=float) if t_b > arc.t[0] else np.asarray(problem.start.state)
+            t0 = time.perf_counter()
+            iters = TARGET_ITERS if side > 0 and sense > 0 else OTHER_ITERS
+            dv, why, new = target(problem, model, t_b, y_b, t_end, direction=b.direction, leg=b.leg,
+                                  moon_side=side, earth_sense=sense, cap_kms=cap, start=state, iters=iters)
+            if dv is None and state is not None:  # the neighbour's answer led nowhere: from zero
+                dv, why, new = target(problem, model, t_b, y_b, t_end, direction=b.direction, leg=b.leg,
+                                      moon_side=side, earth_sense=sense, cap_kms=cap, iters=iters)
+            return dv, why, new, time.perf_counter() - t0
+
+        # a probe at the window's middle orders the families, cheapest first, so that the later
+        # ones are swept under a tighter cap
+        mid = epochs[len(epochs) // 2]
+        probes = {}
+        for name, side, sense in families:
+            probes[name] = run(mid, side, sense, capped(), None)
+            if probes[name][0] is not None:
+                cheapest = min(cheapest, 1000.0 * float(np.linalg.norm(probes[name][0])))
+        order = sorted(families, key=lambda f: np.inf if probes[f[0]][0] is None else np.linalg.norm(probes[f[0]][0]))
+        for name, side, sense in order:
+            cap = capped()
+            state = probes[name][2]
+            sweep = epochs
+            if probes[name][0] is None:  # the probe failed: try the window's ends before the rest
+                ends = [epochs[0], epochs[-1]] if len(epochs) > 1 else []
+                tried = [(t_b, run(t_b, side, sense, cap, None)) for t_b in ends]
+                for t_b, (dv, why, new, wall) in tried:
+                    seeds.append(Seed(j, float(t_b), name, dv, why, wall))
+                    if dv is not None:
+                        cheapest = min(cheapest, 1000.0 * float(np.linalg.norm(dv)))
+                seeds.append(Seed(j, float(mid), name, *probes[name][:2], probes[name][3]))
+                if all(r[0] is None for _, r in tried):
+                    continue
+                sweep = [t for t in epochs if t not in ends and t != mid]
+                state = next(r[2] for _, r in tried if r[0] is not None)
+            for t_b in sweep:
+                if t_b == mid:
+                    dv, why, new, wall = probes[name]
+                else:
+                    dv, why, new, wall = run(t_b, side, sense, cap, state)
+                    state = new
+                seeds.append(Seed(j, float(t_b), name, dv, why, wall))
+                if dv is not None:
+                    cheapest = min(cheapest, 1000.0 * float(np.linalg.norm(dv)))
+    ok = [s for s in seeds if s.dv is not None]
+    say(f"search: {len(seeds)} seeds screened, {len(ok)} met the ranges"
+        + (f", cheapest {min(s.dv_mps for s in ok):.3f} m/s" if ok else ""))
+    return seeds, t_peri
+
+
+_SCREENS = []  # the last few screens: (problem, model, result), matched by identity and equality
+
+
+def screened(problem, model, say=lambda m: None):
+    """:func:`screen`, remembered for the same problem and model (a staged solve asks whether a
+    burn has any seed before solving it, and the solve then uses the same screen)."""
+    for prob, mod, result in _SCREENS:
+        if mod is model and prob == problem:
+            return result
+    result = screen(problem, model, say)
+    _SCREENS.append((problem, model, result))
+    del _SCREENS[:-4]
+    return result
+
+
+def basins(seeds, limit=MAX_STARTS) -> list[Seed]:
+    """The cheapest screened seed of each basin: local minima of Δv against epoch within each
+    (burn, family), cheapest first."""
+    picks = []
+    groups = {}
+    for s in seeds:
+        groups.setdefault((s.burn, s.family), []).append(s)
+    for group in groups.values():
+        group.sort(key=lambda s: s.epoch)
+        vals = [np.inf if s.dv is None else s.dv_mps for s in group]
+        for k, s in enumerate(group):
+            if s.dv is None:
+                continue
+            left = vals[k - 1] if k > 0 else np.inf
+            right = vals[k + 1] if k + 1 < len(vals) else np.inf
+            if vals[k] <= left and vals[k] <= right:
+                picks.append(s)
+    picks.sort(key=lambda s: s.dv_mps)
+    return picks[: max(limit * 3, limit)]
+
+
+# -- the global solve -------------------------------------------------------------------------------
+def global_solve(problem, model, solve_from, say=lambda m: None):
+    """Screen, then solve the most promising starts and keep the cheapest verified plan.
+
+    ``solve_from(burns)`` solves the NLP from the path through ``burns`` [(epoch, dv km/s) per burn
+    of the problem] and returns a Plan (the solver's loop, verification included).  Returns the
+    chosen Plan with ``solver["search"]`` recording every seed and start, or None when no seed met
+    the ranges (the caller falls back on its own guess).
+    """
+    t_start = time.perf_counter()
+    seeds, t_peri = screened(problem, model, say)
+    screen_s = time.perf_counter() - t_start
+    candidates = basins(seeds)
+    record = {"seeds": [s.record() for s in seeds], "starts": [], "screen_s": round(screen_s, 3),
+              "ballistic_perilune_tdb_s": t_peri}
+    if not candidates:
+        return None, record
+    best, tried_epochs = None, []
+    for s in candidates:
+        if len(record["starts"]) >= MAX_STARTS:
+            break
+        if best is not None and s.dv_mps > SKIP_RATIO * best.total_dv_mps + SKIP_MPS:
+            break
+        if any(b == s.burn and f == s.family and abs(t - s.epoch) < 1.0 for b, f, t in tried_epochs):
+            continue
+        tried_epochs.append((s.burn, s.family, s.epoch))
+        burns = [(float(np.clip(s.epoch if j == s.burn else _rest_epoch(problem, j, t_peri), *b.window)),
+                  s.dv if j == s.burn else np.zeros(3)) for j, b in enumerate(problem.burns)]
+        say(f"search: start {len(record['starts']) + 1} from burn {s.burn + 1} at "
+            f"{(s.epoch - problem.start.epoch) / HOUR:.1f} h ({s.family}), screened {s.dv_mps:.3f} m/s")
+        t0 = time.perf_counter()
+        try:
+            plan = solve_from(burns)
+        except ValueError as exc:  # SolveError: no starting point from this seed
+            record["starts"].append({**s.record(), "status": "no starting point", "reason": str(exc),
+                                     "wall_s": round(time.perf_counter() - t0, 3)})
+            continue
+        record["starts"].append({**s.record(), "status": plan.status, "total_dv_mps": plan.total_dv_mps,
+                                 "burn_epochs_tdb_s": [b.epoch for b in plan.burns],
+                                 "iterations": plan.solver.get("iterations"),
+                                 "wall_s": round(time.perf_counter() - t0, 3)})
+        if plan.verified and (best is None or plan.total_dv_mps < best.total_dv_mps - 1e-6):
+            best = plan
+            record["chosen"] = len(record["starts"]) - 1
+    record["search_s"] = round(time.perf_counter() - t_start, 3)
+    return best, record
+
+
+def _rest_epoch(problem, j, t_peri):
+    """Where a burn held at zero sits in a start: its window's middle (before/after the perilune)."""
+    lo, hi = problem.burns[j].window
+    return 0.5 * (lo + hi)
+
+
+__all__ = ["Seed", "target", "screen", "basins", "global_solve", "seed_epochs", "ballistic_path"]
