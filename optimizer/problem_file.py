@@ -165,18 +165,29 @@ def problem_from_dict(d: dict, source: str = "<dict>") -> Problem:
                       objective=objective, model=model, min_burn_spacing_s=spacing_h * 3600.0,
                       min_altitude_km=min_alt, tolerances=tolerances, mesh=mesh,
                       description=description, vehicle=vehicle)
-    if "ephemeris" in (model.kind, *model.continuation):
+    kinds = (model.kind, *model.continuation)
+    if "two-body" in kinds:
+        key = "[model].kind" if model.kind == "two-body" else "[model].continuation"
+        raise ProblemError(f"{source}: {key}: the two-body model has no Moon, so no free return can be "
+                           "designed in it; use earth-moon, cr3bp or ephemeris")
+    if "ephemeris" in kinds:
         _check_ephemeris_span(problem, source)
+    elif "cr3bp" in kinds or ("earth-moon" in kinds and not model.moon):
+        _check_ephemeris_span(problem, source, start_only=True)
     return problem
 
 
-def _check_ephemeris_span(problem: Problem, source: str):
-    """The DE421 ephemeris covers 1900-2050 (with margin for the fit and the injection seed)."""
+def _check_ephemeris_span(problem: Problem, source: str, start_only: bool = False):
+    """The DE421 ephemeris covers 1900-2050 (with margin for the fit and the injection seed).
+    ``start_only``: the model reads DE421 at the start epoch alone (a circular Moon through it)."""
     lo, hi = EPHEMERIS_SPAN
     key = "[start].epoch" if isinstance(problem.start, StateStart) else "[start].epoch_window"
-    if problem.start_epoch - 4 * 86400.0 < lo:
-        raise ProblemError(f"{source}: {key}: expected an epoch after {format_epoch(lo + 4 * 86400.0, 0)} TDB "
-                           "(the ephemeris model's DE421 span)")
+    if problem.start_epoch - 4 * 86400.0 < lo or (start_only and problem.start_epoch + 4 * 86400.0 > hi):
+        raise ProblemError(f"{source}: {key}: expected an epoch between {format_epoch(lo + 4 * 86400.0, 0)} and "
+                           f"{format_epoch(hi - 4 * 86400.0, 0)} TDB (the model places the Moon from DE421, "
+                           "which covers 1900-2050)")
+    if start_only:
+        return
     if problem.latest_epoch() + 86400.0 > hi:
         raise ProblemError(f"{source}: [model].kind: the problem runs to {format_epoch(problem.latest_epoch(), 0)} "
                            f"TDB, past the DE421 span of the ephemeris model (ends {format_epoch(hi, 0)} TDB)")

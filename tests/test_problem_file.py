@@ -155,8 +155,26 @@ def test_ephemeris_span_is_checked():
         b["window"] = ["2060-01-02T00:00:00 TDB", "2060-01-03T00:00:00 TDB"]
     with pytest.raises(ProblemError, match=r"\[model\]\.kind: the problem runs to 2060-.* past the DE421 span"):
         problem_from_dict(d)
-    d["model"] = {"kind": "earth-moon"}  # no ephemeris needed: fine
+    # a circular Moon placed through DE421's Moon at the start needs DE421 there too
+    d["model"] = {"kind": "earth-moon"}
+    with pytest.raises(ProblemError, match=r"\[start\]\.epoch: expected an epoch between 1900-.* and 2049-"):
+        problem_from_dict(d)
+    d["model"] = {"kind": "cr3bp"}
+    with pytest.raises(ProblemError, match=r"\[start\]\.epoch"):
+        problem_from_dict(d)
+    # a circular Moon given in full needs no ephemeris: fine
+    d["model"] = {"kind": "earth-moon", "moon": {"epoch": "2060-01-01T00:00:00 TDB"}}
     assert problem_from_dict(d).start_epoch == parse_epoch("2060-01-01T00:00:00")
+
+
+def test_model_without_a_moon_is_refused_at_the_door():
+    d = raw(PROBLEMS / "demo-abort.toml")
+    d["model"] = {"kind": "two-body"}
+    with pytest.raises(ProblemError, match=r"\[model\]\.kind: the two-body model has no Moon"):
+        problem_from_dict(d)
+    d["model"] = {"kind": "ephemeris", "continuation": ["two-body"]}
+    with pytest.raises(ProblemError, match=r"\[model\]\.continuation: the two-body model has no Moon"):
+        problem_from_dict(d)
 
 
 def test_unreadable_and_broken_files(tmp_path):
