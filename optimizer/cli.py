@@ -49,7 +49,7 @@ def _parser() -> argparse.ArgumentParser:
 
     q = add("solve", "solve a problem file and write its run folder")
     q.add_argument("file", metavar="FILE", help="problem file (TOML)")
-    q.add_argument("--out", metavar="DIR", help="run folder (default: outputs/<scenario name>)")
+    q.add_argument("--out", metavar="DIR", help="run folder (default: outputs/<case name>)")
     q.add_argument("--force", action="store_true", help="replace an existing run folder")
     quiet_json(q)
     q = add("check", "re-verify an exported plan with the independent propagator alone")
@@ -67,7 +67,7 @@ def _parser() -> argparse.ArgumentParser:
     q.add_argument("--json", action="store_true", help="print the problem's table form as JSON")
     q = add("sweep", "trade study: minimum Δv over burn epoch x arrival epoch (the file's [sweep] table)")
     q.add_argument("file", metavar="FILE", help="problem file with a [sweep] table (docs/sweep-format.md)")
-    q.add_argument("--out", metavar="DIR", help="trade folder (default: outputs/<scenario name>-trade)")
+    q.add_argument("--out", metavar="DIR", help="trade folder (default: outputs/<case name>-trade)")
     q.add_argument("--force", action="store_true", help="replace an existing trade folder")
     q.add_argument("--workers", type=int, metavar="N", help="local worker processes (default: every core)")
     q.add_argument("--scheduler", metavar="ADDRESS", help="run the cells on a Dask distributed scheduler")

@@ -628,7 +628,7 @@ def sweep(problem: Problem, burn_epochs, arrival_epochs=None, *, return_duration
     df = _table(problems, results, rows, cols, windows, durations, axis_key, problem)
     df.attrs["sweep"] = {
         "software": f"slingback {__version__}", "caution": CAUTION, "problem": problem.name,
-        "description": problem.description, "model": model.describe(), "axis": axis_key,
+        "summary": problem.summary, "model": model.describe(), "axis": axis_key,
         "burn_index": burn_index, "arrival_tolerance_s": float(arrival_tolerance_s),
         "start_epoch_tdb_s": problem.start_epoch, "tolerances": dataclasses.asdict(problem.tolerances),
         "mesh": dataclasses.asdict(problem.mesh), "max_iter": int(max_iter), "retry": bool(retry),
@@ -1134,8 +1134,8 @@ def _report(df, front, meta, figures, wrote_parquet, problem) -> str:
     ok = df[df["verified"]]
     lines = [f"# Trade study: {meta.get('problem', problem.name if problem else 'unknown')}", "",
              f"> **Caution.** {CAUTION}", ""]
-    if meta.get("description"):
-        lines += [meta["description"], ""]
+    if meta.get("summary"):
+        lines += [meta["summary"], ""]
     axis = meta.get("axis", "arrival_epochs")
     ax_text = ("arrival epoch" + (f" (within ±{meta.get('arrival_tolerance_s', 0) / 3600:g} h)"
                                   if meta.get("arrival_tolerance_s") else " (exact)")

@@ -117,7 +117,7 @@ def case():
     problem = Problem(name="trade-test", start=StateStart(T0, tuple(y0)),
                       burns=(BurnSpec((T0 + 3600.0, T0 + 12 * 3600.0), 300.0),),
                       lunar=LunarPass((100.0, 5000.0)), arrival=ReturnSpec(flight_path_deg=(-7.0, -5.5)),
-                      description="invented test scenario")
+                      summary="invented test case")
     reference = solve(problem, model=model)  # the unconstrained optimum (minimum Δv already)
     assert reference.verified, reference.reason
     t_arr = reference.event("entry").epoch

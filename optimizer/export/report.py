@@ -176,14 +176,14 @@ def report_markdown(plan, problem, *, sampled=None, figures=(), files=(), notes=
               "> Nothing on this page is a usable design: the burns are the optimiser's last iterate.", ""]
     L += [f"> **Caution.** {CAUTION}", ""]
 
-    L += ["## Scenario", ""]
-    if problem.description:
-        L += [problem.description, ""]
+    L += ["## Case", ""]
+    if problem.summary:
+        L += [problem.summary, ""]
     start = ("state at " + format_epoch(plan.start_epoch, 3) + " TDB" if hasattr(problem.start, "state")
              else f"parking orbit {problem.start.altitude_km:g} km, {problem.start.inclination_deg:g} deg")
     r0 = np.linalg.norm(plan.start_state[:3])
     L += _table(["item", "value"], [
-        ["vehicle", problem.vehicle or "—"], ["status", f"**{plan.status.upper()}**"],
+        ["spacecraft", problem.spacecraft or "—"], ["status", f"**{plan.status.upper()}**"],
         ["start", f"{start}, {r0:,.0f} km from Earth"],
         ["force model", f"{model_name}" + (f" (continuation: {', '.join(problem.model.continuation)})"
                                            if problem.model.continuation else "")],
