@@ -241,12 +241,22 @@ class Plan:
                 burns=burns, events=events,
                 trajectory_t=np.asarray(traj.get("epoch_tdb_s", []), dtype=float),
                 trajectory_y=np.asarray(traj.get("state_km_kms", []), dtype=float).reshape(-1, 6),
-                verification=ver, solver=d.get("solver", {}), problem=d.get("problem", {}),
+                verification=ver, solver=d.get("solver", {}), problem=_problem_table(d.get("problem", {}), version),
                 warm={names.get(k, k): v for k, v in d.get("warm_start", {}).items()})
         except KeyError as exc:
             raise ValueError(f"missing key {exc.args[0]!r}") from None
         except (TypeError, ValueError) as exc:
             raise ValueError(f"malformed plan: {exc}") from None
+
+
+def _problem_table(problem: dict, version: int) -> dict:
+    """A version-1 plan's problem, with its first table in version 2's words
+    (``[scenario]`` name, description, vehicle -> ``[case]`` name, summary, spacecraft)."""
+    if version != 1 or not isinstance(problem, dict) or not isinstance(problem.get("scenario"), dict):
+        return problem
+    words = {"name": "name", "description": "summary", "vehicle": "spacecraft"}
+    case = {words.get(k, k): v for k, v in problem["scenario"].items()}
+    return {"case": case, **{k: v for k, v in problem.items() if k != "scenario"}}
 
 
 def solver_record(record):

@@ -496,12 +496,23 @@ def test_solver_record_and_warm_start_in_our_own_words(case):
 
 def test_check_reads_version_1_and_refuses_others(folder, tmp_path):
     data = json.loads((folder / "plan.json").read_text())
-    v1 = {**data, "format_version": 1, "warm_start": {}}
-    for key in ("finite_burns",):
-        v1.pop(key)
+    # a version-1 plan as version 1 wrote it: the library's words, the old first table, no figures
+    problem = {k: v for k, v in data["problem"].items() if k not in ("case", "spacecraft")}
+    problem["scenario"] = {"name": "export-case", "description": "old words", "vehicle": "Testbird-0"}
+    v1 = {**data, "format_version": 1, "problem": problem, "warm_start": {"x": [1.0], "lam_x": [0.0], "lam_g": []},
+          "solver": {"status": "Solve_Succeeded", "success": True, "timing_s": {"nlp_f": 0.1}, "iterations": 3},
+          "burns": [{k: v for k, v in b.items() if k in ("epoch_tdb", "epoch_tdb_s", "dv_mps", "dv_icrf_mps",
+                                                          "dv_rtn_mps")} for b in data["burns"]]}
+    v1.pop("finite_burns")
     (tmp_path / "v1.json").write_text(json.dumps(v1))
     code, out, err = run(["check", str(tmp_path / "v1.json")])
     assert code == 0 and "PASSED" in out, err
+    back = read_plan(tmp_path / "v1.json")
+    assert back.problem["case"] == {"name": "export-case", "summary": "old words", "spacecraft": "Testbird-0"}
+    assert back.warm["lam_x"] == [0.0]
+    rewritten = back.to_dict()  # written again, it is version 2 in our own words
+    assert rewritten["format_version"] == 2 and rewritten["solver"]["solver_message"] == "Solve_Succeeded"
+    assert rewritten["warm_start"] == {"variables": [1.0], "bound_multipliers": [0.0], "constraint_multipliers": []}
     for version in (3, "2", None):
         (tmp_path / "vx.json").write_text(json.dumps({**data, "format_version": version}))
         code, _, err = run(["check", str(tmp_path / "vx.json")])

@@ -16,7 +16,7 @@ from .. import __version__
 from ..constants import CAUTION
 from .tables import COLUMNS
 
-__all__ = ["MANIFEST_FORMAT", "manifest_dict", "write_manifest"]
+__all__ = ["MANIFEST_FORMAT", "manifest_dict", "write_manifest", "file_entries", "unit_of", "write_folder_manifest"]
 
 MANIFEST_FORMAT = "slingback-run-manifest"
 MANIFEST_VERSION = 1
@@ -24,11 +24,44 @@ MEDIA_TYPES = {".json": "application/json", ".csv": "text/csv", ".toml": "applic
                ".oem": "text/plain", ".opm": "text/plain", ".md": "text/markdown", ".png": "image/png"}
 
 
+#: Unit by the ending of a column name (our naming rule: units in the names).
+SUFFIX_UNITS = (("_tdb_s", "s"), ("_tdb", "ISO-8601 TDB"), ("_mps", "m/s"), ("_kms", "km/s"), ("_km", "km"),
+                ("_kg", "kg"), ("_deg", "deg"), ("_days", "d"), ("_s", "s"))
+
+
+def unit_of(column: str) -> str:
+    """The unit a column name states (``dv_mps`` -> ``m/s``), or ``""`` for a unitless column."""
+    return next((unit for suffix, unit in SUFFIX_UNITS if column.endswith(suffix)), "")
+
+
 def _columns(path: Path, name: str) -> list[dict]:
     header = path.read_text(encoding="utf-8").split("\n", 1)[0].split(",")
     known = COLUMNS.get(name, {})
-    return [{"name": c, "unit": known.get(c, ("", ""))[0], "description": known.get(c, ("", ""))[1]}
+    return [{"name": c, "unit": known.get(c, (unit_of(c), ""))[0], "description": known.get(c, ("", ""))[1]}
             for c in header]
+
+
+def file_entries(folder, files: dict) -> list[dict]:
+    """One entry per file (name -> role): role, media type, size, SHA-256, and a CSV's columns."""
+    folder, entries = Path(folder), []
+    for name, role in files.items():
+        path = folder / name
+        data = path.read_bytes()
+        entry = {"name": name, "role": role, "media_type": MEDIA_TYPES.get(path.suffix, "application/octet-stream"),
+                 "bytes": len(data), "sha256": hashlib.sha256(data).hexdigest()}
+        if path.suffix == ".csv":
+            entry["columns"] = _columns(path, name)
+        entries.append(entry)
+    return entries
+
+
+def write_folder_manifest(folder, head: dict, files: dict) -> None:
+    """Write ``manifest.json``: ``head`` (format, software, ...) and the entries of ``files`` and itself."""
+    d = {**head, "files": file_entries(folder, files)}
+    d["files"].append({"name": "manifest.json", "role": "this list of the folder's files",
+                       "media_type": "application/json"})
+    (Path(folder) / "manifest.json").write_text(json.dumps(d, indent=1, ensure_ascii=False, default=str) + "\n",
+                                                encoding="utf-8")
 
 
 def manifest_dict(folder, plan, problem, files: dict, *, model_name: str, created=None) -> dict:
@@ -45,17 +78,8 @@ def manifest_dict(folder, plan, problem, files: dict, *, model_name: str, create
     created : datetime, optional
         Creation time (UTC); default now.
     """
-    folder = Path(folder)
     created = created or dt.datetime.now(dt.timezone.utc)
-    entries = []
-    for name, role in files.items():
-        path = folder / name
-        data = path.read_bytes()
-        entry = {"name": name, "role": role, "media_type": MEDIA_TYPES.get(path.suffix, "application/octet-stream"),
-                 "bytes": len(data), "sha256": hashlib.sha256(data).hexdigest()}
-        if path.suffix == ".csv":
-            entry["columns"] = _columns(path, name)
-        entries.append(entry)
+    entries = file_entries(folder, files)
     v = plan.verification
     return {
         "format": MANIFEST_FORMAT, "format_version": MANIFEST_VERSION,
@@ -74,8 +98,6 @@ def manifest_dict(folder, plan, problem, files: dict, *, model_name: str, create
 
 def write_manifest(folder, plan, problem, files: dict, *, model_name: str, created=None) -> None:
     """Write ``manifest.json`` into ``folder`` (listing ``files`` and itself)."""
-    d = manifest_dict(folder, plan, problem, files, model_name=model_name, created=created)
-    d["files"].append({"name": "manifest.json", "role": "this list of the folder's files",
-                       "media_type": "application/json"})
-    (Path(folder) / "manifest.json").write_text(json.dumps(d, indent=1, ensure_ascii=False) + "\n",
-                                                encoding="utf-8")
+    d = manifest_dict(folder, plan, problem, {}, model_name=model_name, created=created)
+    d.pop("files")
+    write_folder_manifest(folder, d, files)
