@@ -127,8 +127,10 @@ def opm_text(plan, problem, *, frame: str = "RTN", model_name: str | None = None
             continue
         f = figures[i]
         dv = b.dv_rtn if frame == "RTN" else b.dv
+        early = epoch - f.ignition_epoch
         lines += [""] + _comments(f"Burn {i + 1}: impulse at {format_epoch(b.epoch, 6)} TDB, "
-                                  f"dv {_num(b.dv_mps)} m/s.")
+                                  f"dv {_num(b.dv_mps)} m/s." + (
+                                      f" Its centred ignition is {early:.3f} s before EPOCH." if early > 0 else ""))
         lines += [f"MAN_EPOCH_IGNITION = {format_epoch(f.ignition_epoch, 6)}",
                   f"MAN_DURATION = {_num(f.duration_s)}",
                   f"MAN_DELTA_MASS = {_num(-f.propellant_kg)}",
