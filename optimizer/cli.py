@@ -49,25 +49,25 @@ def _parser() -> argparse.ArgumentParser:
 
     q = add("solve", "solve a problem file and write its run folder")
     q.add_argument("file", metavar="FILE", help="problem file (TOML)")
-    q.add_argument("--out", metavar="DIR", help="run folder (default: outputs/<scenario name>)")
+    q.add_argument("--out", metavar="DIR", help="run folder (default: outputs/<case name>)")
     q.add_argument("--force", action="store_true", help="replace an existing run folder")
     quiet_json(q)
     q = add("check", "re-verify an exported plan with the independent propagator alone")
-    q.add_argument("plan", metavar="PLAN.json")
+    q.add_argument("plan", metavar="PLAN", help="a plan.json file or a run folder holding one")
     quiet_json(q)
     q = add("demo", f"solve problems/{DEMO}.toml into outputs/{DEMO}/ (replacing an earlier demo)")
     q.add_argument("--out", metavar="DIR", help=f"run folder (default: outputs/{DEMO})")
     quiet_json(q)
     add("models", "list the force models")
     q = add("plot", "draw the figures of an exported plan")
-    q.add_argument("plan", metavar="PLAN.json")
+    q.add_argument("plan", metavar="PLAN", help="a plan.json file or a run folder holding one")
     q.add_argument("--out", metavar="DIR", help="folder for the PNG files (default: the plan's folder)")
     q = add("validate", "load a problem file and report what it asks for")
     q.add_argument("file", metavar="FILE")
     q.add_argument("--json", action="store_true", help="print the problem's table form as JSON")
     q = add("sweep", "trade study: minimum Δv over burn epoch x arrival epoch (the file's [sweep] table)")
     q.add_argument("file", metavar="FILE", help="problem file with a [sweep] table (docs/sweep-format.md)")
-    q.add_argument("--out", metavar="DIR", help="trade folder (default: outputs/<scenario name>-trade)")
+    q.add_argument("--out", metavar="DIR", help="trade folder (default: outputs/<case name>-trade)")
     q.add_argument("--force", action="store_true", help="replace an existing trade folder")
     q.add_argument("--workers", type=int, metavar="N", help="local worker processes (default: every core)")
     q.add_argument("--scheduler", metavar="ADDRESS", help="run the cells on a Dask distributed scheduler")
@@ -148,19 +148,20 @@ def cmd_demo(args) -> int:
 
 
 def cmd_check(args) -> int:
-    from .export import read_plan, recheck
+    from .export import plan_path, read_plan, recheck
 
-    plan = read_plan(args.plan)
+    source = str(plan_path(args.plan))
+    plan = read_plan(source)
     progress = _progress(args)
     if progress:
         progress(f"re-propagating {plan.name} ({len(plan.burns)} burn(s)) with the independent propagator")
     try:
-        ver = recheck(plan, source=args.plan)
+        ver = recheck(plan, source=source)
     except RuntimeError as exc:
         _err(f"the re-propagation failed: {exc}")
         return EXIT_UNVERIFIED
     if args.json:
-        print(json.dumps({"plan": args.plan, "passed": ver.passed, "residuals": ver.residuals,
+        print(json.dumps({"plan": source, "passed": ver.passed, "residuals": ver.residuals,
                           "tolerances": ver.tolerances, "violations": ver.violations}, indent=1))
     else:
         print(f"{plan.name}: re-verification {'PASSED' if ver.passed else 'FAILED'}")
@@ -184,16 +185,17 @@ def cmd_models(args) -> int:
 
 
 def cmd_plot(args) -> int:
-    from .export import PlanFileError, plan_problem, read_plan, write_plot_files
+    from .export import PlanFileError, plan_path, plan_problem, read_plan, write_plot_files
 
-    plan = read_plan(args.plan)
-    problem = plan_problem(plan, args.plan)
-    out = Path(args.out) if args.out else Path(args.plan).resolve().parent
+    source = plan_path(args.plan)
+    plan = read_plan(source)
+    problem = plan_problem(plan, str(source))
+    out = Path(args.out) if args.out else source.resolve().parent
     out.mkdir(parents=True, exist_ok=True)
     try:
         names = write_plot_files(plan, problem, out)
     except ValueError as exc:
-        raise PlanFileError(f"{args.plan}: cannot re-propagate the plan ({exc})") from None
+        raise PlanFileError(f"{source}: cannot re-propagate the plan ({exc})") from None
     for name in names:
         print(out / name)
     return EXIT_OK

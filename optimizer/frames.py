@@ -244,7 +244,7 @@ def inertial_to_rotating(r, v, r_moon, v_moon):
     Parameters
     ----------
     r, v : array_like, shape (3,) or (N, 3)
-        Geocentric inertial position (km) and velocity (km/s) of the vehicle.
+        Geocentric inertial position (km) and velocity (km/s) of the spacecraft.
     r_moon, v_moon : array_like, shape (3,) or (N, 3)
         Geocentric inertial position (km) and velocity (km/s) of the Moon at the same epoch(s),
         one Moon state per row of ``r`` or one for all.

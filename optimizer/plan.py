@@ -1,8 +1,13 @@
 """The result of a design: burns, events, states, verification, solver record; and its JSON form.
 
 A :class:`Plan` is plain data.  ``Plan.to_dict`` gives the documented ``slingback-plan`` JSON
-(format version 1, see ``docs/plan-format.md``) and ``Plan.from_dict`` reads it back, so a plan
-written by one run can warm-start or be re-checked by another.
+(format version 2, see ``docs/plan-format.md`` and the JSON Schema ``docs/plan.schema.json``) and
+``Plan.from_dict`` reads versions 1 and 2 back, so a plan written by one run can warm-start or be
+re-checked by another.
+
+The solver record and the warm start are written in our own words (:func:`solver_record`): the
+optimisation library's names stay inside the process, its final message is kept under one
+``solver_message`` key.
 """
 
 from __future__ import annotations
@@ -14,10 +19,22 @@ import numpy as np
 from . import __version__
 from .constants import CAUTION
 from .judge import ConstraintRow
+from .propellant import G0, finite_burns
 from .timescales import format_epoch, parse_epoch
 
 FORMAT = "slingback-plan"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+#: Versions :meth:`Plan.from_dict` reads (version 1: the library's names in the solver record).
+READABLE_VERSIONS = (1, 2)
+
+#: Our names for the optimisation library's timing entries (``timing_s``).
+TIMING_NAMES = {"nlp_f": "objective", "nlp_g": "constraints", "nlp_grad_f": "objective_gradient",
+                "nlp_grad": "lagrangian_gradient", "nlp_jac_g": "constraint_jacobian",
+                "nlp_hess_l": "lagrangian_hessian"}
+#: Our names for a run record's keys (a record is a dict with ``timing_s``).
+RUN_KEYS = {"status": "solver_message", "success": "converged"}
+#: Warm-start entries: in-process name -> name in plan.json.
+WARM_NAMES = {"x": "variables", "lam_x": "bound_multipliers", "lam_g": "constraint_multipliers"}
 
 
 @dataclass(frozen=True)
@@ -129,10 +146,28 @@ class Plan:
         return next((e for e in self.events if e.name == name), None)
 
     # -- JSON -------------------------------------------------------------------------------------
-    def to_dict(self) -> dict:
-        def burn(b: Burn):
-            return {"epoch_tdb": format_epoch(b.epoch, 6), "epoch_tdb_s": b.epoch, "dv_mps": b.dv_mps,
-                    "dv_icrf_mps": [1000.0 * x for x in b.dv], "dv_rtn_mps": [1000.0 * x for x in b.dv_rtn]}
+    def to_dict(self, propulsion=None) -> dict:
+        """The ``slingback-plan`` JSON form (version 2).
+
+        Parameters
+        ----------
+        propulsion : Propulsion, optional
+            The problem's ``[spacecraft]`` table; with it every burn carries its finite-burn
+            figures (mass, propellant, duration, ignition and cut-off epochs) and the plan a
+            ``finite_burns`` summary.  Without it those keys are absent.
+        """
+        figures = finite_burns(self.burns, propulsion)
+
+        def burn(i: int, b: Burn):
+            d = {"epoch_tdb": format_epoch(b.epoch, 6), "epoch_tdb_s": b.epoch, "dv_mps": b.dv_mps,
+                 "dv_icrf_mps": [1000.0 * x for x in b.dv], "dv_rtn_mps": [1000.0 * x for x in b.dv_rtn]}
+            if figures is not None:
+                f = figures[i]
+                d.update(mass_before_kg=f.mass_before_kg, mass_after_kg=f.mass_after_kg,
+                         propellant_kg=f.propellant_kg, duration_s=f.duration_s,
+                         ignition_epoch_tdb=format_epoch(f.ignition_epoch, 6), ignition_epoch_tdb_s=f.ignition_epoch,
+                         cutoff_epoch_tdb=format_epoch(f.cutoff_epoch, 6), cutoff_epoch_tdb_s=f.cutoff_epoch)
+            return d
 
         def event(e: EventRecord):
             d = {k: v for k, v in asdict(e).items() if v is not None}
@@ -145,6 +180,15 @@ class Plan:
         if self.verification is not None:
             v = asdict(self.verification)
             v["events"] = [event(e) for e in self.verification.events]
+        summary = {}
+        if figures is not None:
+            summary["finite_burns"] = {
+                "method": "rocket equation per burn, constant thrust, burn centred on the impulse; "
+                          "mass carried from burn to burn; gravity losses neglected",
+                "standard_gravity_mps2": G0, "initial_mass_kg": propulsion.mass_kg,
+                "thrust_n": propulsion.thrust_n, "isp_s": propulsion.isp_s,
+                "final_mass_kg": figures[-1].mass_after_kg if figures else propulsion.mass_kg,
+                "total_propellant_kg": sum(f.propellant_kg for f in figures)}
         return _plain({
             "format": FORMAT,
             "format_version": FORMAT_VERSION,
@@ -159,23 +203,31 @@ class Plan:
             "start": {"epoch_tdb": format_epoch(self.start_epoch, 6), "epoch_tdb_s": self.start_epoch,
                       "state_km_kms": list(self.start_state)},
             "total_dv_mps": self.total_dv_mps,
-            "burns": [burn(b) for b in self.burns],
+            "burns": [burn(i, b) for i, b in enumerate(self.burns)],
+            **summary,
             "events": [event(e) for e in self.events],
             "verification": v,
-            "solver": self.solver,
+            "solver": solver_record(self.solver),
             "trajectory": {"epoch_tdb_s": list(self.trajectory_t),
                            "state_km_kms": [list(r) for r in self.trajectory_y]},
             "problem": self.problem,
-            "warm_start": self.warm,
+            "warm_start": {WARM_NAMES.get(k, k): v for k, v in self.warm.items()},
         })
 
     @classmethod
     def from_dict(cls, d: dict) -> "Plan":
-        """Read the JSON form; raises ``ValueError`` naming the first bad key."""
+        """Read the JSON form (versions 1 and 2); raises ``ValueError`` naming the first bad key.
+
+        Finite-burn figures are derived data and are not read back (they follow from the burns
+        and the problem's ``[spacecraft]`` table).
+        """
         if d.get("format") != FORMAT:
             raise ValueError(f"format: expected {FORMAT!r}, got {d.get('format')!r}")
-        if d.get("format_version") != FORMAT_VERSION:
-            raise ValueError(f"format_version: expected {FORMAT_VERSION}, got {d.get('format_version')!r}")
+        version = d.get("format_version")
+        if isinstance(version, bool) or version not in READABLE_VERSIONS:
+            raise ValueError(f"format_version: this slingback {__version__} reads {FORMAT} versions "
+                             f"{' and '.join(map(str, READABLE_VERSIONS))}, got {version!r}")
+        names = {v: k for k, v in WARM_NAMES.items()}
         try:
             burns = [Burn(float(b["epoch_tdb_s"]) if "epoch_tdb_s" in b else parse_epoch(b["epoch_tdb"]),
                           tuple(x / 1000.0 for x in b["dv_icrf_mps"]),
@@ -194,12 +246,45 @@ class Plan:
                 burns=burns, events=events,
                 trajectory_t=np.asarray(traj.get("epoch_tdb_s", []), dtype=float),
                 trajectory_y=np.asarray(traj.get("state_km_kms", []), dtype=float).reshape(-1, 6),
-                verification=ver, solver=d.get("solver", {}), problem=d.get("problem", {}),
-                warm=d.get("warm_start", {}))
+                verification=ver, solver=d.get("solver", {}), problem=_problem_table(d.get("problem", {}), version),
+                warm={names.get(k, k): v for k, v in d.get("warm_start", {}).items()})
         except KeyError as exc:
             raise ValueError(f"missing key {exc.args[0]!r}") from None
         except (TypeError, ValueError) as exc:
             raise ValueError(f"malformed plan: {exc}") from None
+
+
+def _problem_table(problem: dict, version: int) -> dict:
+    """A version-1 plan's problem, with its first table in version 2's words
+    (``[scenario]`` name, description, vehicle -> ``[case]`` name, summary, spacecraft)."""
+    if version != 1 or not isinstance(problem, dict) or not isinstance(problem.get("scenario"), dict):
+        return problem
+    words = {"name": "name", "description": "summary", "vehicle": "spacecraft"}
+    case = {words.get(k, k): v for k, v in problem["scenario"].items()}
+    return {"case": case, **{k: v for k, v in problem.items() if k != "scenario"}}
+
+
+def solver_record(record):
+    """A solver record in our own words (idempotent; version-1 records are translated too).
+
+    In every run record (a dict with ``timing_s``) the library's final message goes under
+    ``solver_message``, its success flag under ``converged``, and the timing entries get the
+    names of :data:`TIMING_NAMES`.
+    """
+    if isinstance(record, list):
+        return [solver_record(x) for x in record]
+    if not isinstance(record, dict):
+        return record
+    run = "timing_s" in record
+    out = {}
+    for k, v in record.items():
+        if run and k in RUN_KEYS:
+            out[RUN_KEYS[k]] = v
+        elif k == "timing_s" and isinstance(v, dict):
+            out[k] = {TIMING_NAMES.get(t, t.removeprefix("nlp_")): x for t, x in v.items()}
+        else:
+            out[k] = solver_record(v)
+    return out
 
 
 def _event_from(e: dict) -> EventRecord:

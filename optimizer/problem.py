@@ -140,6 +140,25 @@ class Tolerances:
 
 
 @dataclass(frozen=True)
+class Propulsion:
+    """The optional ``[spacecraft]`` table: what turns impulsive burns into finite-burn figures.
+
+    Attributes
+    ----------
+    mass_kg : float
+        Wet mass at the start of the plan, kg.
+    thrust_n : float
+        Thrust of the engine used for every burn, N.
+    isp_s : float
+        Specific impulse of that engine, s (with standard gravity g0 = 9.80665 m/s^2).
+    """
+
+    mass_kg: float
+    thrust_n: float
+    isp_s: float
+
+
+@dataclass(frozen=True)
 class Mesh:
     """Transcription size: segments per phase and fixed RK8 steps per segment."""
 
@@ -163,8 +182,9 @@ class Problem:
     min_altitude_km: float = 50.0  # no node of the path may come closer to Earth or Moon
     tolerances: Tolerances = Tolerances()
     mesh: Mesh = Mesh()
-    description: str = ""
-    vehicle: str = ""  # spacecraft name written into exports (OEM OBJECT_NAME)
+    summary: str = ""  # free text of the [case] table, shown in the report
+    spacecraft: str = ""  # spacecraft name written into exports (OEM/OPM OBJECT_NAME)
+    propulsion: Propulsion | None = None  # the [spacecraft] table (finite-burn figures)
 
     @property
     def start_epoch(self) -> float:

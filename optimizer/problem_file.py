@@ -17,13 +17,15 @@ import difflib
 import math
 import re
 import tomllib
+
+import tomli_w
 from pathlib import Path
 
 from .constants import ENTRY_INTERFACE_ALT, GM_EARTH, R_EARTH
 from .frames import kepler_to_cartesian
 from .models.factory import MODEL_KINDS
 from .problem import (BurnSpec, LunarPass, Mesh, ModelSpec, Objective, ParkingStart, Problem,
-                      ReturnSpec, StateStart, Tolerances)
+                      Propulsion, ReturnSpec, StateStart, Tolerances)
 from .timescales import format_epoch, parse_epoch
 
 __all__ = ["ProblemError", "load_problem", "problem_from_dict", "problem_to_dict", "dumps_toml",
@@ -37,14 +39,15 @@ MODEL_DESCRIPTIONS = {
     "ephemeris": "Earth, Moon (and Sun, optional Earth J2) at JPL DE421 positions, Earth-centred.",
 }
 
-SECTIONS = ("scenario", "model", "start", "burn", "lunar", "return", "objective", "tolerances",
+SECTIONS = ("case", "spacecraft", "model", "start", "burn", "lunar", "return", "objective", "tolerances",
             "mesh", "limits", "sweep")
 #: Sections read by another layer: a ``[sweep]`` table is checked by :mod:`optimizer.trade`.
 OTHER_LAYERS = ("sweep",)
 #: The keys each table may hold (checked first, so a typo is reported as a typo).
 KEYS = {
     "": SECTIONS,
-    "scenario": ("name", "description", "vehicle"),
+    "case": ("name", "summary", "spacecraft"),
+    "spacecraft": ("mass_kg", "thrust_n", "isp_s"),
     "model": ("kind", "sun", "j2", "continuation", "moon"),
     "model.moon": ("radius_km", "period_days", "inclination_deg", "raan_deg", "phase_deg", "epoch"),
     "start": ("kind", "epoch", "position_km", "velocity_kms", "elements", "altitude_km",
@@ -129,13 +132,14 @@ def problem_from_dict(d: dict, source: str = "<dict>") -> Problem:
         raise ProblemError(f"{source}: expected a table of sections, got {_show(d)}")
     d = {k: v for k, v in d.items() if k not in OTHER_LAYERS}
     top = _Table(source, "", "", d)
-    scenario = _Table.sub(top, "scenario", required=True)
-    name = scenario.string("name", pattern=_NAME_RE,
-                           what="a name of letters, digits, '.', '_' or '-' (at most 64 characters)")
-    description = scenario.string("description", "")
-    vehicle = scenario.string("vehicle", "", pattern=re.compile(r"[ -~]{0,64}"),
-                              what="printable ASCII text of at most 64 characters")
-    scenario.done()
+    case = _Table.sub(top, "case", required=True)
+    name = case.string("name", pattern=_NAME_RE,
+                       what="a name of letters, digits, '.', '_' or '-' (at most 64 characters)")
+    summary = case.string("summary", "")
+    spacecraft = case.string("spacecraft", "", pattern=re.compile(r"[ -~]{0,64}"),
+                             what="printable ASCII text of at most 64 characters")
+    case.done()
+    propulsion = _propulsion(_Table.sub(top, "spacecraft")) if "spacecraft" in d else None
 
     model = _model(_Table.sub(top, "model"))
     start = _start(_Table.sub(top, "start", required=True))
@@ -164,7 +168,7 @@ def problem_from_dict(d: dict, source: str = "<dict>") -> Problem:
     problem = Problem(name=name, start=start, burns=burns, lunar=lunar_pass, arrival=arrival,
                       objective=objective, model=model, min_burn_spacing_s=spacing_h * 3600.0,
                       min_altitude_km=min_alt, tolerances=tolerances, mesh=mesh,
-                      description=description, vehicle=vehicle)
+                      summary=summary, spacecraft=spacecraft, propulsion=propulsion)
     kinds = (model.kind, *model.continuation)
     if "two-body" in kinds:
         key = "[model].kind" if model.kind == "two-body" else "[model].continuation"
@@ -191,6 +195,15 @@ def _check_ephemeris_span(problem: Problem, source: str, start_only: bool = Fals
     if problem.latest_epoch() + 86400.0 > hi:
         raise ProblemError(f"{source}: [model].kind: the problem runs to {format_epoch(problem.latest_epoch(), 0)} "
                            f"TDB, past the DE421 span of the ephemeris model (ends {format_epoch(hi, 0)} TDB)")
+
+
+def _propulsion(t: "_Table") -> Propulsion:
+    """The [spacecraft] table: all three keys, each positive (a partial table is refused)."""
+    spec = Propulsion(mass_kg=t.number("mass_kg", lo=0.0, hi=1e7, lo_open=True),
+                      thrust_n=t.number("thrust_n", lo=0.0, hi=1e8, lo_open=True),
+                      isp_s=t.number("isp_s", lo=0.0, hi=1e5, lo_open=True))
+    t.done()
+    return spec
 
 
 def _model(t: "_Table") -> ModelSpec:
@@ -489,10 +502,13 @@ def describe_problem(problem: Problem) -> str:
     a = p.arrival
     arrive = (f"entry interface {a.entry_radius_km - R_EARTH:g} km, flight-path angle {list(a.flight_path_deg)} deg"
               if a.target == "entry" else f"vacuum perigee {list(a.perigee_alt_km)} km")
-    lines = [f"scenario   {p.name}" + (f" ({p.vehicle})" if p.vehicle else ""),
-             f"model      {p.model.kind}" + (f", continuation {' -> '.join(p.model.continuation)}"
-                                               if p.model.continuation else ""),
-             f"start      {start}"]
+    lines = [f"case       {p.name}" + (f" ({p.spacecraft})" if p.spacecraft else "")]
+    if p.propulsion is not None:
+        s = p.propulsion
+        lines.append(f"spacecraft {s.mass_kg:g} kg, thrust {s.thrust_n:g} N, specific impulse {s.isp_s:g} s")
+    lines += [f"model      {p.model.kind}" + (f", continuation {' -> '.join(p.model.continuation)}"
+                                             if p.model.continuation else ""),
+              f"start      {start}"]
     lines += [f"burn {i:<5d} {b.direction}, {b.leg}, up to {b.max_dv_mps:g} m/s, "
               f"{tdb(b.window[0])} to {tdb(b.window[1])}" for i, b in enumerate(p.burns, 1)]
     lines += [f"perilune   {list(p.lunar.altitude_km)} km", f"arrival    {arrive}",
@@ -510,11 +526,11 @@ def problem_to_dict(problem: Problem) -> dict:
     so ``problem_from_dict(problem_to_dict(p)) == p``.  Optional settings left at None are omitted.
     """
     p = problem
-    scenario = {"name": p.name}
-    if p.description:
-        scenario["description"] = p.description
-    if p.vehicle:
-        scenario["vehicle"] = p.vehicle
+    case = {"name": p.name}
+    if p.summary:
+        case["summary"] = p.summary
+    if p.spacecraft:
+        case["spacecraft"] = p.spacecraft
     model = {"kind": p.model.kind, "sun": p.model.sun, "j2": p.model.j2,
              "continuation": list(p.model.continuation)}
     if p.model.moon:
@@ -544,8 +560,12 @@ def problem_to_dict(problem: Problem) -> dict:
     if p.objective.dv_budget_mps is not None:
         objective["dv_budget_mps"] = p.objective.dv_budget_mps
     t = p.tolerances
+    head = {"case": case}
+    if p.propulsion is not None:
+        head["spacecraft"] = {"mass_kg": p.propulsion.mass_kg, "thrust_n": p.propulsion.thrust_n,
+                              "isp_s": p.propulsion.isp_s}
     return {
-        "scenario": scenario, "model": model, "start": start, "burn": burns,
+        **head, "model": model, "start": start, "burn": burns,
         "lunar": {"perilune_altitude_km": list(p.lunar.altitude_km)},
         "return": ret, "objective": objective,
         "tolerances": {"entry_position_km": t.entry_position_km, "flight_path_deg": t.flight_path_deg,
@@ -582,45 +602,5 @@ def _hours(seconds: float) -> float:
 
 
 def dumps_toml(d: dict) -> str:
-    """Write the table form of a problem as TOML (the subset our files use).
-
-    Handles nested tables, arrays of tables, strings, booleans, numbers and arrays of those.
-    """
-    lines: list[str] = []
-
-    def value(v) -> str:
-        if isinstance(v, bool):
-            return "true" if v else "false"
-        if isinstance(v, str):
-            return '"' + v.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n") + '"'
-        if isinstance(v, float):
-            return repr(v) if math.isfinite(v) else ("nan" if v != v else ("inf" if v > 0 else "-inf"))
-        if isinstance(v, int):
-            return str(v)
-        if isinstance(v, list):
-            return "[" + ", ".join(value(x) for x in v) + "]"
-        raise TypeError(f"cannot write {type(v).__name__} as a TOML value")
-
-    def table(name: str, t: dict, header: str | None):
-        scalars = {k: v for k, v in t.items() if not _is_table(v)}
-        if header is not None:
-            lines.extend(["", header])
-        lines.extend(f"{_key(k)} = {value(v)}" for k, v in scalars.items())
-        for k, v in t.items():
-            sub = f"{name}.{_key(k)}" if name else _key(k)
-            if isinstance(v, dict):
-                table(sub, v, f"[{sub}]")
-            elif _is_table(v):
-                for item in v:
-                    table(sub, item, f"[[{sub}]]")
-
-    table("", d, None)
-    return "\n".join(lines).lstrip("\n") + "\n"
-
-
-def _is_table(v) -> bool:
-    return isinstance(v, dict) or (isinstance(v, list) and bool(v) and all(isinstance(x, dict) for x in v))
-
-
-def _key(k: str) -> str:
-    return k if re.fullmatch(r"[A-Za-z0-9_-]+", k) else '"' + k.replace('"', '\\"') + '"'
+    """Write the table form of a problem as TOML (with ``tomli_w``)."""
+    return tomli_w.dumps(d)

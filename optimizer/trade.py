@@ -54,6 +54,7 @@ import pandas as pd
 from . import __version__
 from .constants import CAUTION, SECONDS_PER_DAY
 from .plan import Plan
+from .export.manifest import write_folder_manifest
 from .export.run import refuse_existing, staged_folder
 from .problem import Objective, Problem
 from .timescales import format_epoch, parse_epoch
@@ -628,7 +629,7 @@ def sweep(problem: Problem, burn_epochs, arrival_epochs=None, *, return_duration
     df = _table(problems, results, rows, cols, windows, durations, axis_key, problem)
     df.attrs["sweep"] = {
         "software": f"slingback {__version__}", "caution": CAUTION, "problem": problem.name,
-        "description": problem.description, "model": model.describe(), "axis": axis_key,
+        "summary": problem.summary, "model": model.describe(), "axis": axis_key,
         "burn_index": burn_index, "arrival_tolerance_s": float(arrival_tolerance_s),
         "start_epoch_tdb_s": problem.start_epoch, "tolerances": dataclasses.asdict(problem.tolerances),
         "mesh": dataclasses.asdict(problem.mesh), "max_iter": int(max_iter), "retry": bool(retry),
@@ -1082,12 +1083,18 @@ def write_sweep(df: pd.DataFrame, out_dir, *, problem: Problem | None = None, fo
     out = Path(out_dir)
     with staged_folder(out, force) as tmp:
         front = pareto(df)
-        header = _csv_header(meta, problem)
-        _csv(df, tmp / "trade.csv", header + ["one row per cell of the grid"])
-        _csv(front, tmp / "pareto.csv", header + ["verified cells not beaten on both Δv and return duration"])
+        _csv(df, tmp / "trade.csv")
+        _csv(front, tmp / "pareto.csv")
         wrote_parquet = _parquet(df, tmp / "trade.parquet", meta)
         figures = _figures(df, front, tmp, meta)
         (tmp / "trade-report.md").write_text(_report(df, front, meta, figures, wrote_parquet, problem))
+        files = {"trade.csv": "one row per cell of the grid",
+                 "pareto.csv": "verified cells not beaten on both Δv and return duration"}
+        if wrote_parquet:
+            files["trade.parquet"] = "the same table as trade.csv (metadata key `slingback`)"
+        files.update(figures)
+        files["trade-report.md"] = "the trade report"
+        write_folder_manifest(tmp, _manifest_head(meta, problem), files)
     return out
 
 
@@ -1095,19 +1102,21 @@ def _model_name(meta) -> str:
     return (meta.get("model") or {}).get("name", "unknown")
 
 
-def _csv_header(meta, problem) -> list[str]:
+def _manifest_head(meta, problem) -> dict:
+    """What the trade folder's manifest.json says besides its files (the CSV files are plain)."""
     name = meta.get("problem") or (problem.name if problem is not None else "unknown")
     tol = meta.get("tolerances") or (dataclasses.asdict(problem.tolerances) if problem is not None else {})
-    return [f"slingback {__version__}: trade study {name}",
-            f"model {_model_name(meta)}; verification tolerances {json.dumps(tol)}; epochs TDB; "
-            "Earth-centred ICRF axes; Δv in m/s; return duration from the start epoch",
-            f"CAUTION: {CAUTION}"]
+    return {"format": "slingback-trade-manifest", "format_version": 1,
+            "software": {"name": "slingback", "version": __version__}, "case": name,
+            "model": _model_name(meta), "verification_tolerances": tol, "time_scale": "TDB",
+            "frame": "Earth-centred inertial, ICRF axes",
+            "units": "in the column names; return duration from the start epoch",
+            "csv_dialect": "comma-separated, header on line 1, no comment lines, UTF-8", "caution": CAUTION}
 
 
-def _csv(df, path, header):
-    with open(path, "w", newline="") as f:
-        f.write("".join(f"# {line}\n" for line in header))
-        df.to_csv(f, index=False, float_format="%.15g")
+def _csv(df, path):
+    """A plain CSV: header on line 1, no comment lines (metadata in manifest.json)."""
+    df.to_csv(path, index=False, lineterminator="\n")
 
 
 def _parquet(df, path, meta) -> bool:
@@ -1134,8 +1143,8 @@ def _report(df, front, meta, figures, wrote_parquet, problem) -> str:
     ok = df[df["verified"]]
     lines = [f"# Trade study: {meta.get('problem', problem.name if problem else 'unknown')}", "",
              f"> **Caution.** {CAUTION}", ""]
-    if meta.get("description"):
-        lines += [meta["description"], ""]
+    if meta.get("summary"):
+        lines += [meta["summary"], ""]
     axis = meta.get("axis", "arrival_epochs")
     ax_text = ("arrival epoch" + (f" (within ±{meta.get('arrival_tolerance_s', 0) / 3600:g} h)"
                                   if meta.get("arrival_tolerance_s") else " (exact)")
@@ -1189,7 +1198,8 @@ def _report(df, front, meta, figures, wrote_parquet, problem) -> str:
                          f"{_fmt_epoch(r['arrival_epoch_tdb_s'])} | {r['return_duration_days']:.3f} | "
                          f"{r['total_dv_mps']:.3f} |")
         lines.append("")
-    lines += ["## Files", "", "- `trade.csv`: every cell (read with `pandas.read_csv(path, comment=\"#\")`)."]
+    lines += ["## Files", "", "- `trade.csv`: every cell (reads as it is with `pandas.read_csv(path)`).",
+              "- `manifest.json`: every file with its role; columns and units of the CSV files."]
     if wrote_parquet:
         lines.append("- `trade.parquet`: the same table (metadata key `slingback`).")
     lines.append("- `pareto.csv`: the Pareto set.")

@@ -20,6 +20,7 @@ from optimizer.models.factory import build_model
 
 T0 = parse_epoch("2027-05-10T00:00:00 TDB")
 BURN_DV = np.array([0.2, -0.1, 0.05]) * 1e-3  # km/s, a 0.23 m/s trim
+SPACECRAFT = (1200.0, 440.0, 225.0)  # invented: mass kg, thrust N, specific impulse s
 
 
 def tdb(t):
@@ -28,8 +29,8 @@ def tdb(t):
 
 def make_case():
     """(problem, model, plan) for an invented scenario ``export-case``."""
-    spec = {"scenario": {"name": "export-case", "vehicle": "Testbird-0",
-                         "description": "invented test case"},
+    spec = {"case": {"name": "export-case", "spacecraft": "Testbird-0", "summary": "invented test case"},
+            "spacecraft": {"mass_kg": SPACECRAFT[0], "thrust_n": SPACECRAFT[1], "isp_s": SPACECRAFT[2]},
             "model": {"kind": "earth-moon", "moon": {"epoch": tdb(T0)}}}
     probe = problem_from_dict({**spec, "start": {"kind": "state", "epoch": tdb(T0),
                                                  "position_km": [2e5, 0, 0], "velocity_kms": [0, 1, 0]},

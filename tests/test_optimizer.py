@@ -231,3 +231,24 @@ def test_warm_start_converges_fast(abort_plan, abort_problem, model):
     assert plan.status == "verified", plan.reason
     assert plan.total_dv_mps == pytest.approx(abort_plan.total_dv_mps, abs=1e-3)
     assert plan.solver["iterations"] <= abort_plan.solver["iterations"] // 2
+
+
+# --- the plan's JSON form of a real solve ----------------------------------------------------------
+def test_plan_json_of_a_solve_fits_the_schema_in_our_own_words(abort_plan, abort_problem):
+    """The solver's record goes into plan.json without the optimisation library's names (its final
+    message kept under solver_message), and the whole plan validates against docs/plan.schema.json."""
+    import json
+
+    from plan_schema import validator
+    from optimizer.export import plan_json
+    from optimizer.plan import Plan
+
+    data = plan_json(abort_plan, abort_problem)
+    assert not [e.message for e in validator().iter_errors(data)]
+    text = json.dumps({k: data[k] for k in ("solver", "warm_start")})
+    for word in ("nlp_", "lam_x", "lam_g", '"success"', '"return_status"'):
+        assert word not in text, word
+    assert data["solver"]["solver_message"] == "Solve_Succeeded" and data["solver"]["converged"] is True
+    assert {"objective", "constraint_jacobian", "lagrangian_hessian"} <= set(data["solver"]["timing_s"])
+    back = Plan.from_dict(json.loads(json.dumps(data)))
+    np.testing.assert_array_equal(back.warm["lam_g"], abort_plan.warm["lam_g"])

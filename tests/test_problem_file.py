@@ -22,7 +22,7 @@ from hypothesis import strategies as st
 from optimizer.cli import main
 from optimizer.constants import GM_EARTH, R_EARTH
 from optimizer.frames import kepler_to_cartesian
-from optimizer.problem import ParkingStart, StateStart
+from optimizer.problem import ParkingStart, Propulsion, StateStart
 from optimizer.problem_file import (ProblemError, dumps_toml, load_problem, problem_from_dict,
                                     problem_to_dict)
 from optimizer.timescales import format_epoch, parse_epoch
@@ -69,7 +69,7 @@ def test_demo_files_exist():
 def test_demo_file_loads_and_round_trips(path):
     problem = load_problem(path)
     assert problem.name == path.stem
-    assert problem.vehicle == "Marram-1"
+    assert problem.spacecraft == "Marram-1"
     assert problem_from_dict(problem_to_dict(problem)) == problem
     assert problem_from_dict(tomllib.loads(dumps_toml(problem_to_dict(problem)))) == problem
     code, out, err = run(["validate", str(path)])
@@ -181,10 +181,10 @@ def test_unreadable_and_broken_files(tmp_path):
     code, _, err = run(["validate", str(tmp_path / "absent.toml")])
     assert code == 2 and "absent.toml: cannot read the file" in err and "Traceback" not in err
     bad = tmp_path / "bad.toml"
-    bad.write_bytes(b"\xff\xfe[scenario]\n")
+    bad.write_bytes(b"\xff\xfe[case]\n")
     code, _, err = run(["validate", str(bad)])
     assert code == 2 and "not a UTF-8 text file" in err
-    bad.write_text("[scenario]\nname = \"x\n")
+    bad.write_text("[case]\nname = \"x\n")
     code, _, err = run(["validate", str(bad)])
     assert code == 2 and "invalid TOML" in err and "line 2" in err
 
@@ -251,7 +251,7 @@ def test_wrong_type_is_refused(data, path):
     refused(dumps_toml(d), *key_words(key_path))
 
 
-REQUIRED = [("scenario",), ("scenario", "name"), ("start",), ("start", "kind"), ("burn",),
+REQUIRED = [("case",), ("case", "name"), ("start",), ("start", "kind"), ("burn",),
             ("burn", 0, "window"), ("burn", 0, "max_dv_mps")]
 REQUIRED_STATE = [("start", "epoch"), ("start", "position_km"), ("start", "velocity_kms")]
 REQUIRED_PARKING = [("start", "altitude_km"), ("start", "inclination_deg"), ("start", "epoch_window")]
@@ -314,8 +314,11 @@ OUT_OF_RANGE = {
     ("tolerances", "flight_path_deg"): [0.0, -1.0],
     ("limits", "min_burn_spacing_hours"): [-1.0, 5000.0],
     ("limits", "min_altitude_km"): [-10.0],
-    ("scenario", "name"): ["", "has space", "../escape", "x" * 80],
-    ("scenario", "vehicle"): ["tab\there"],
+    ("case", "name"): ["", "has space", "../escape", "x" * 80],
+    ("case", "spacecraft"): ["tab\there"],
+    ("spacecraft", "mass_kg"): [0.0, -5.0, math.nan],
+    ("spacecraft", "thrust_n"): [0.0, -1.0],
+    ("spacecraft", "isp_s"): [0.0, -300.0, 1e6],
 }
 
 
@@ -353,7 +356,7 @@ def test_misspelt_key_is_refused(data, path):
     assert "unknown key" in err or "missing" in err
 
 
-BREAKERS = ["key_without_value =", "[[burn]", "= 3", "name = \"unterminated", "[scenario]",
+BREAKERS = ["key_without_value =", "[[burn]", "= 3", "name = \"unterminated", "[case]",
             "x = [1, 2", "y = 1979-05-27T07:32:00Zz", "z = 'a' 'b'"]
 
 
@@ -364,3 +367,23 @@ def test_broken_toml_is_refused_with_its_line(data, path):
     n = data.draw(st.integers(0, len(lines)))
     lines.insert(n, data.draw(st.sampled_from(BREAKERS)))
     err = refused("\n".join(lines) + "\n", "invalid TOML", "line")
+
+
+# --- our own vocabulary: [case] and the optional [spacecraft] table ------------------------------
+def test_validate_speaks_of_the_case_and_its_spacecraft():
+    code, out, err = run(["validate", str(PROBLEMS / "demo-abort.toml")])
+    assert code == 0, err
+    assert "case       demo-abort (Marram-1)" in out
+    assert "spacecraft 21500 kg, thrust 27000 N, specific impulse 316 s" in out
+    assert "scenario" not in out.lower() and "vehicle" not in out.lower()
+    assert load_problem(PROBLEMS / "demo-abort.toml").propulsion == Propulsion(21500.0, 27000.0, 316.0)
+    assert load_problem(PROBLEMS / "demo-injection.toml").propulsion is None
+
+
+def test_old_table_name_and_partial_spacecraft_table_are_refused():
+    d = raw(PROBLEMS / "demo-abort.toml")
+    d["scenario"] = d.pop("case")
+    refused(dumps_toml(d), "[scenario]", "unknown section")
+    d = raw(PROBLEMS / "demo-abort.toml")
+    del d["spacecraft"]["isp_s"]
+    refused(dumps_toml(d), "[spacecraft].isp_s", "missing")

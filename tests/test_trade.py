@@ -117,7 +117,7 @@ def case():
     problem = Problem(name="trade-test", start=StateStart(T0, tuple(y0)),
                       burns=(BurnSpec((T0 + 3600.0, T0 + 12 * 3600.0), 300.0),),
                       lunar=LunarPass((100.0, 5000.0)), arrival=ReturnSpec(flight_path_deg=(-7.0, -5.5)),
-                      description="invented test scenario")
+                      summary="invented test case")
     reference = solve(problem, model=model)  # the unconstrained optimum (minimum Δv already)
     assert reference.verified, reference.reason
     t_arr = reference.event("entry").epoch
@@ -253,16 +253,23 @@ def test_write_sweep_folder(swept, case, tmp_path):
     out = trade.write_sweep(df, tmp_path / "trade", problem=problem)
     names = sorted(p.name for p in out.iterdir())
     assert names == sorted(["trade.csv", "trade.parquet", "pareto.csv", "trade-map.png", "trade-abort.png",
-                            "trade-pareto.png", "trade-report.md"])
+                            "trade-pareto.png", "trade-report.md", "manifest.json"])
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary folder left
     report = (out / "trade-report.md").read_text()
     assert CAUTION in report and "r00c01" in report
     text = (out / "trade.csv").read_text()
-    assert f"CAUTION: {CAUTION}" in text.splitlines()[2]
-    back = pd.read_csv(out / "trade.csv", comment="#")
+    assert "#" not in text.splitlines()[0]  # plain CSV: header on line 1, metadata in manifest.json
+    back = pd.read_csv(out / "trade.csv")
     assert list(back.columns) == trade.COLUMNS
     assert np.allclose(back["total_dv_mps"], df["total_dv_mps"], rtol=1e-14)
-    assert list(pd.read_csv(out / "pareto.csv", comment="#")["cell"]) == list(trade.pareto(df)["cell"])
+    assert list(pd.read_csv(out / "pareto.csv")["cell"]) == list(trade.pareto(df)["cell"])
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["caution"] == CAUTION and manifest["case"] == problem.name
+    assert sorted(f["name"] for f in manifest["files"]) == names
+    columns = next(f["columns"] for f in manifest["files"] if f["name"] == "trade.csv")
+    assert [c["name"] for c in columns] == trade.COLUMNS
+    units = {c["name"]: c["unit"] for c in columns}
+    assert (units["total_dv_mps"], units["burn_epoch_tdb_s"], units["perilune_altitude_km"]) == ("m/s", "s", "km")
     assert pd.read_parquet(out / "trade.parquet")["cell"].tolist() == df["cell"].tolist()
     from PIL import Image
 

@@ -15,15 +15,23 @@ from ..problem_file import ProblemError, problem_from_dict
 from ..verify import verify
 from .sampling import plan_model, propagation_end
 
-__all__ = ["PlanFileError", "read_plan", "plan_problem", "recheck"]
+__all__ = ["PlanFileError", "plan_path", "read_plan", "plan_problem", "recheck"]
 
 
 class PlanFileError(ValueError):
     """A plan file that cannot be read or used; the message names the file."""
 
 
+def plan_path(path) -> Path:
+    """The plan file named by ``path``: ``path`` itself, or ``path/plan.json`` for a run folder."""
+    path = Path(path)
+    return path / "plan.json" if path.is_dir() else path
+
+
 def read_plan(path) -> Plan:
-    """Read a ``plan.json``; raises :class:`PlanFileError` naming the file and the problem."""
+    """Read a ``plan.json`` (or the one in a run folder); raises :class:`PlanFileError` naming the
+    file and the problem.  Versions 1 and 2 of the format are read; others are refused."""
+    path = plan_path(path)
     try:
         data = json.loads(Path(path).read_text(encoding="utf-8"))
     except OSError as exc:

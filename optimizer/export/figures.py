@@ -51,9 +51,9 @@ def _style(ax, title):
 
 def _save(fig, path, plan, model_name):
     status = plan.status.upper() + ("" if plan.verified else " - NOT VERIFIED")
-    fig.tight_layout(rect=(0, 0.03, 1, 1))
-    fig.text(0.01, 0.005, f"slingback {__version__} | {plan.name} | model {model_name} | {status} | "
-             "design studies only, not flight-certified", fontsize=6, color="#6b7177")
+    fig.tight_layout(rect=(0, 0.07, 1, 1))
+    fig.text(0.01, 0.005, f"slingback {__version__} | {plan.name} | model {model_name} | {status}\n"
+             f"CAUTION: {CAUTION}", fontsize=5.2, color="#6b7177", wrap=True)
     fig.savefig(path, dpi=130, metadata={"Software": f"slingback {__version__}",
                                          "Description": f"{plan.name}, {status}. {CAUTION}"})
     plt.close(fig)

@@ -32,7 +32,7 @@ def oem_text(sampled, plan, problem, *, model_name: str | None = None, created: 
     sampled : SampledPath
     plan : Plan
     problem : Problem
-        Gives OBJECT_NAME (``problem.vehicle``, else the scenario name) and OBJECT_ID (the name).
+        Gives OBJECT_NAME (``problem.spacecraft``, else the case name) and OBJECT_ID (the case name).
     model_name : str, optional
         Force model named in the comments (default ``problem.model.kind``).
     created : datetime, optional
@@ -41,7 +41,7 @@ def oem_text(sampled, plan, problem, *, model_name: str | None = None, created: 
     created = created or dt.datetime.now(dt.timezone.utc)
     model_name = model_name or problem.model.kind
     lines = ["CCSDS_OEM_VERS = 2.0"]
-    lines += _comments(f"Written by slingback {__version__}. Scenario {problem.name}: plan status "
+    lines += _comments(f"Written by slingback {__version__}. Case {problem.name}: plan status "
                        f"{plan.status.upper()}" + ("" if plan.verified else f" (NOT VERIFIED: {plan.reason})")
                        + ".")
     lines += _comments(f"States re-propagated by the independent propagator (scipy DOP853) in the "
@@ -49,7 +49,7 @@ def oem_text(sampled, plan, problem, *, model_name: str | None = None, created: 
                        f"{len(plan.burns)} impulsive burn(s). Units km and km/s.")
     lines += _comments("CAUTION: " + CAUTION)
     lines += [f"CREATION_DATE = {created.strftime('%Y-%m-%dT%H:%M:%S')}", "ORIGINATOR = SLINGBACK"]
-    object_name = (problem.vehicle or problem.name).encode("ascii", "replace").decode()
+    object_name = (problem.spacecraft or problem.name).encode("ascii", "replace").decode()
     for number, t0, t1 in sampled.arcs:
         rows = sampled.arc == number
         t, y = sampled.t[rows], sampled.y[rows]

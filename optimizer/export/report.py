@@ -13,6 +13,8 @@ import numpy as np
 from .. import __version__
 from ..constants import CAUTION
 from ..judge import ACTIVE_TOL, ConstraintRow
+from ..plan import solver_record
+from ..propellant import G0, finite_burns
 from ..timescales import format_epoch
 
 __all__ = ["ConstraintRow", "constraint_rows", "report_markdown", "ACTIVE_TOL"]
@@ -112,14 +114,14 @@ def report_markdown(plan, problem, *, sampled=None, figures=(), files=(), notes=
               "> Nothing on this page is a usable design: the burns are the optimiser's last iterate.", ""]
     L += [f"> **Caution.** {CAUTION}", ""]
 
-    L += ["## Scenario", ""]
-    if problem.description:
-        L += [problem.description, ""]
+    L += ["## Case", ""]
+    if problem.summary:
+        L += [problem.summary, ""]
     start = ("state at " + format_epoch(plan.start_epoch, 3) + " TDB" if hasattr(problem.start, "state")
              else f"parking orbit {problem.start.altitude_km:g} km, {problem.start.inclination_deg:g} deg")
     r0 = np.linalg.norm(plan.start_state[:3])
     L += _table(["item", "value"], [
-        ["vehicle", problem.vehicle or "—"], ["status", f"**{plan.status.upper()}**"],
+        ["spacecraft", problem.spacecraft or "—"], ["status", f"**{plan.status.upper()}**"],
         ["start", f"{start}, {r0:,.0f} km from Earth"],
         ["force model", f"{model_name}" + (f" (continuation: {', '.join(problem.model.continuation)})"
                                            if problem.model.continuation else "")],
@@ -135,6 +137,21 @@ def report_markdown(plan, problem, *, sampled=None, figures=(), files=(), notes=
          (f"{format_epoch(s.window[0], 0)} – {format_epoch(s.window[1], 0)}" if s else "—"),
          f"{s.max_dv_mps:g}" if s else "—"]
         for i, (b, s) in enumerate(zip(plan.burns, list(problem.burns) + [None] * len(plan.burns)), 1)])
+
+    figures_fb = finite_burns(plan.burns, problem.propulsion)
+    if figures_fb is not None:
+        sc = problem.propulsion
+        L += ["## Finite burns" + ("" if ok else " (last iterate — NOT VERIFIED)"), "",
+              f"Spacecraft {problem.spacecraft or problem.name}: {sc.mass_kg:g} kg at the start, thrust "
+              f"{sc.thrust_n:g} N, specific impulse {sc.isp_s:g} s (g0 = {G0} m/s²). Propellant by the rocket "
+              "equation, mass carried from burn to burn; each burn centred on its impulse at constant thrust "
+              "(gravity losses neglected: a first estimate).", ""]
+        L += _table(["#", "ignition (TDB)", "duration s", "mass before kg", "propellant kg", "mass after kg"], [
+            [i, format_epoch(f.ignition_epoch, 3), f"{f.duration_s:.3f}", f"{f.mass_before_kg:.3f}",
+             f"{f.propellant_kg:.3f}", f"{f.mass_after_kg:.3f}"] for i, f in enumerate(figures_fb, 1)])
+        total = sum(f.propellant_kg for f in figures_fb)
+        L += [f"Total propellant {total:.3f} kg; final mass "
+              f"{(figures_fb[-1].mass_after_kg if figures_fb else sc.mass_kg):.3f} kg.", ""]
 
     L += ["## Events", ""]
     rows = []
@@ -185,7 +202,7 @@ def report_markdown(plan, problem, *, sampled=None, figures=(), files=(), notes=
               f"lower the cost). Outcome: {pr.get('result')}.", ""]
 
     L += ["## Solver record", ""]
-    L += _table(["key", "value"], [[k, _short_json(val)] for k, val in plan.solver.items()]) \
+    L += _table(["key", "value"], [[k, _short_json(val)] for k, val in solver_record(plan.solver).items()]) \
         if plan.solver else ["No solver record.", ""]
 
     if not ok or notes:

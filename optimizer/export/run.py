@@ -1,6 +1,8 @@
-"""Write a run folder: plan.json, problem.toml, CSV tables, CCSDS OEM, figures and report.md.
+"""Write a run folder: plan.json, problem.toml, CSV tables, CCSDS OEM and OPM, figures, report.md
+and manifest.json.
 
-An OEM is written only for a verified plan (other tools ingest it without reading the report).
+An OEM and an OPM are written only for a verified plan (other tools ingest them without reading
+the report); the OPM also needs the problem's ``[spacecraft]`` table.
 Everything is written into a temporary folder beside the destination and moved into place only
 when complete, so a run folder is either whole or absent.  An existing folder is replaced only
 with ``force=True`` (new folder written, old one moved aside, new one moved in, old one deleted).
@@ -21,7 +23,9 @@ from ..constants import CAUTION
 from ..problem_file import dumps_toml, problem_to_dict
 from ..timescales import format_epoch
 from .figures import FIGURES, write_figures, write_search_figure
+from .manifest import write_manifest
 from .oem import oem_text
+from .opm import OPM_FILES, opm_text
 from .report import report_markdown
 from .sampling import plan_model, sample_plan
 from .tables import burns_frame, nodes_frame, trajectory_frame, write_csv
@@ -29,19 +33,25 @@ from .tables import burns_frame, nodes_frame, trajectory_frame, write_csv
 __all__ = ["write_run", "plan_json", "write_plot_files", "run_summary"]
 
 FILES = {
-    "plan.json": "the plan (slingback-plan format, version 1) with its problem",
+    "plan.json": "the plan (slingback-plan format, version 2; schema docs/plan.schema.json) with its problem",
     "problem.toml": "the problem as solved (reusable with `slingback solve`)",
-    "burns.csv": "burns: epoch (TDB), Δv and its ICRF and RTN components in m/s",
+    "burns.csv": "burns: epoch (TDB), Δv and its ICRF and RTN components in m/s; finite-burn figures "
+                 "with a [spacecraft] table",
     "trajectory.csv": "independently re-propagated states, Earth-centred ICRF, km and km/s",
     "nodes.csv": "the optimiser's own nodes (what was compared with the re-propagation)",
     "trajectory.oem": "CCSDS OEM 2.0 (KVN), one segment per coast arc, ICRF, TDB",
-    "report.md": "this report",
+    "plan.opm": "CCSDS OPM 2.0 (KVN): the state and one maneuver per non-zero burn, Δv in RTN",
+    "plan-icrf.opm": "CCSDS OPM 2.0 (KVN): the same maneuvers with Δv on ICRF axes",
+    "report.md": "the run report",
+    "manifest.json": "every file with its role; columns and units of the CSV files",
 }
+FILES.update({f: FIGURES[f] for f in FIGURES})
 
 
 def plan_json(plan, problem) -> dict:
-    """The plan's JSON form carrying its problem in table form (what ``slingback check`` reads)."""
-    d = plan.to_dict()
+    """The plan's JSON form carrying its problem in table form (what ``slingback check`` reads),
+    with finite-burn figures when the problem has a ``[spacecraft]`` table."""
+    d = plan.to_dict(propulsion=problem.propulsion)
     d["problem"] = problem_to_dict(problem)
     return d
 
@@ -157,9 +167,9 @@ def _write_contents(plan, problem, folder: Path, model, created):
     (folder / "problem.toml").write_text(
         f"# Problem of the slingback {__version__} run {plan.name!r} (status {plan.status}).\n"
         f"# {CAUTION}\n\n" + dumps_toml(problem_to_dict(problem)))
-    write_csv(burns_frame(plan, problem), folder / "burns.csv", "burns", plan, name)
+    write_csv(burns_frame(plan, problem), folder / "burns.csv")
     if len(plan.trajectory_t):
-        write_csv(nodes_frame(plan), folder / "nodes.csv", "optimiser nodes", plan, name)
+        write_csv(nodes_frame(plan), folder / "nodes.csv")
         files.append("nodes.csv")
     sampled = None
     try:
@@ -172,7 +182,7 @@ def _write_contents(plan, problem, folder: Path, model, created):
     if sampled is not None:
         moon = getattr(model, "moon", None)
         write_csv(trajectory_frame(sampled, model.earth.radius, moon.radius if moon is not None else None),
-                  folder / "trajectory.csv", "independently re-propagated trajectory", plan, name)
+                  folder / "trajectory.csv")
         files.append("trajectory.csv")
         if plan.verified:  # an OEM is what other tools ingest: only ever for a verified plan
             (folder / "trajectory.oem").write_text(oem_text(sampled, plan, problem, model_name=name,
@@ -181,7 +191,19 @@ def _write_contents(plan, problem, folder: Path, model, created):
         else:
             notes.append("no trajectory.oem is written for a plan that is not verified")
         figures = [(f, FIGURES[f]) for f in write_plot_files(plan, problem, folder, model=model, sampled=sampled)]
-    files.append("report.md")
+    if not plan.verified:
+        notes.append("no plan.opm is written for a plan that is not verified")
+    elif problem.propulsion is None:
+        notes.append("no plan.opm: the problem has no [spacecraft] table, and a CCSDS OPM maneuver needs "
+                     "its mass change (MAN_DELTA_MASS)")
+    else:
+        for frame, opm in OPM_FILES.items():
+            (folder / opm).write_text(opm_text(plan, problem, frame=frame, model_name=name, created=created))
+            files.append(opm)
+    files += ["report.md", "manifest.json"]
     text = report_markdown(plan, problem, sampled=sampled, figures=figures,
                            files=[(f, FILES[f]) for f in files], notes=notes, model_name=name)
     (folder / "report.md").write_text(text)
+    written = {f: FILES[f] for f in files if f != "manifest.json"}
+    written.update({f: FILES[f] for f, _ in figures})
+    write_manifest(folder, plan, problem, written, model_name=name, created=created)

@@ -62,7 +62,7 @@ def scenario():
     return Problem(name="trade-bench", start=StateStart(t0, tuple(y0)),
                    burns=(BurnSpec((t0 + HOUR, t0 + 12 * HOUR), 300.0),), lunar=LunarPass((100.0, 5000.0)),
                    arrival=ReturnSpec(flight_path_deg=(-7.0, -5.5)),
-                   description="Invented benchmark: one burn 1-12 h into an outbound coast nudged by +10 m/s.")
+                   summary="Invented benchmark: one burn 1-12 h into an outbound coast nudged by +10 m/s.")
 
 
 def load(path):
