@@ -17,6 +17,7 @@ import difflib
 import math
 import re
 import tomllib
+from dataclasses import replace
 from pathlib import Path
 
 from .constants import ENTRY_INTERFACE_ALT, GM_EARTH, R_EARTH
@@ -38,9 +39,10 @@ MODEL_DESCRIPTIONS = {
 }
 
 SECTIONS = ("scenario", "model", "start", "burn", "lunar", "return", "objective", "tolerances",
-            "mesh", "limits", "sweep")
-#: Sections read by another layer: a ``[sweep]`` table is checked by :mod:`optimizer.trade`.
-OTHER_LAYERS = ("sweep",)
+            "mesh", "limits", "sweep", "dispersion")
+#: Sections read by another layer: a ``[sweep]`` table is checked by :mod:`optimizer.trade`, a
+#: ``[dispersion]`` table (the error model) by :mod:`optimizer.dispersion.errors`.
+OTHER_LAYERS = ("sweep", "dispersion")
 #: The keys each table may hold (checked first, so a typo is reported as a typo).
 KEYS = {
     "": SECTIONS,
@@ -53,7 +55,7 @@ KEYS = {
     "burn": ("window", "max_dv_mps", "direction", "leg"),
     "lunar": ("perilune_altitude_km",),
     "return": ("target", "entry_altitude_km", "flight_path_deg", "perigee_altitude_km", "epoch_window",
-               "inclination_deg", "max_duration_days"),
+               "inclination_deg", "max_duration_days", "flight_path_margin_deg"),
     "objective": ("kind", "dv_budget_mps", "mps_per_day"),
     "tolerances": ("entry_position_km", "flight_path_deg", "perilune_altitude_km", "perigee_altitude_km"),
     "mesh": ("segments", "steps", "max_refinements"),
@@ -108,6 +110,10 @@ def load_problem(path) -> Problem:
         from .trade import parse_sweep_spec
 
         parse_sweep_spec(data["sweep"], problem, source)
+    if "dispersion" in data:  # the error model, checked at the door too
+        from .dispersion.errors import error_model_from_table
+
+        error_model_from_table(data["dispersion"], source)
     return problem
 
 
@@ -295,8 +301,19 @@ def _arrival(t: "_Table", start, burns) -> ReturnSpec:
         epoch_window=window,
         inclination_deg=t.pair("inclination_deg", None, lo=0.0, hi=180.0),
         max_duration_days=t.number("max_duration_days", None, lo=0.0, hi=100.0, lo_open=True))
+    spec = _flight_path_margin(t, spec)
     t.done()
     return spec
+
+
+def _flight_path_margin(t: "_Table", spec: ReturnSpec) -> ReturnSpec:
+    """``[return].flight_path_margin_deg``: tightens the corridor on both sides for the solve."""
+    lo, hi = spec.flight_path_deg
+    margin = t.number("flight_path_margin_deg", 0.0, lo=0.0, hi=90.0)
+    if 2.0 * margin >= hi - lo:
+        raise t.error("flight_path_margin_deg", f"a margin below half the corridor width ({(hi - lo) / 2:g} deg)",
+                      margin)
+    return replace(spec, flight_path_margin_deg=margin)
 
 
 def _objective(t: "_Table") -> Objective:
@@ -529,6 +546,8 @@ def problem_to_dict(problem: Problem) -> dict:
         ret["inclination_deg"] = list(a.inclination_deg)
     if a.max_duration_days is not None:
         ret["max_duration_days"] = a.max_duration_days
+    if a.flight_path_margin_deg:
+        ret["flight_path_margin_deg"] = a.flight_path_margin_deg
     objective = {"kind": p.objective.kind, "mps_per_day": p.objective.mps_per_day}
     if p.objective.dv_budget_mps is not None:
         objective["dv_budget_mps"] = p.objective.dv_budget_mps

@@ -117,7 +117,8 @@ def _chunk_task(model, nominal: Nominal, errors, seed: int, start: int, stop: in
             res = evaluate(model, nominal, y0, burns)
         except (RuntimeError, ValueError) as exc:  # e.g. a burn pushed outside the span
             res = {k: math.nan for k in NUMERIC}
-            res.update(inside=False, reason=f"propagation failed: {exc}", perilune_in_range=False)
+            res.update(inside=False, reason=f"propagation failed: {exc}", verdict="propagation failed",
+                       perilune_in_range=False)
         rows.append(_row(i, d, res, nominal, nominal_entry))
     return rows
 

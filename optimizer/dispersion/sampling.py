@@ -200,10 +200,24 @@ def outcome(arcs, model, nominal: Nominal) -> dict:
             out["inside"], out["reason"] = False, f"perigee altitude {h:.3f} km outside [{lo:g}, {hi:g}]"
         else:
             out["inside"], out["reason"] = True, "inside"
+    out["verdict"] = _verdict(out["reason"])
     a = out["perilune_altitude_km"]
     plo, phi = nominal.perilune_range_km
     out["perilune_in_range"] = bool(math.isfinite(a) and plo <= a <= phi)
     return out
+
+
+def _verdict(reason: str) -> str:
+    """A short class of a reason (``steep``, ``shallow``, ``no entry`` ...), for counting."""
+    if reason.startswith(("steep", "shallow")):
+        return reason.split(":")[0]
+    if reason.startswith("no entry"):
+        return "no entry"
+    if reason.startswith("perigee altitude"):
+        return "perigee outside"
+    if reason.startswith("propagation failed"):
+        return "propagation failed"
+    return reason
 
 
 def evaluate(model, nominal: Nominal, y0, burns, rtol=DISPERSION_RTOL, atol=DISPERSION_ATOL) -> dict:
