@@ -237,7 +237,7 @@ class _Store:
 
 
 def run_samples(model, nominal: Nominal, errors, samples: int, seed: int, *, workers=None, scheduler=None,
-                resume_dir=None, progress=None) -> pd.DataFrame:
+                resume_dir=None, progress=None, chunk: int = CHUNK) -> pd.DataFrame:
     """Evaluate ``samples`` dispersed executions; one row per sample, in sample order.
 
     Parameters
@@ -254,16 +254,18 @@ def run_samples(model, nominal: Nominal, errors, samples: int, seed: int, *, wor
         Save finished chunks here; skip chunks already saved for the same run.
     progress : callable(done, total), optional
         Called after each chunk.
+    chunk : int
+        Samples per task.
     """
     if isinstance(samples, bool) or not isinstance(samples, int) or samples < 1:
         raise ErrorModelError(f"--samples: expected a whole number of at least 1, got {samples!r}")
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
         raise ErrorModelError(f"--seed: expected a whole number of at least 0, got {seed!r}")
     _, nominal_entry = _nominal_entry(model, nominal)
-    definition = {"nominal": repr(nominal), "errors": errors.to_table(), "seed": seed, "chunk": CHUNK,
+    definition = {"nominal": repr(nominal), "errors": errors.to_table(), "seed": seed, "chunk": chunk,
                   "rtol": DISPERSION_RTOL, "atol": DISPERSION_ATOL, "model": model.describe()}
     store = _Store(resume_dir, definition)
-    chunks = [(a, min(a + CHUNK, samples)) for a in range(0, samples, CHUNK)]
+    chunks = [(a, min(a + chunk, samples)) for a in range(0, samples, chunk)]
     results, todo = {}, []
     for c in chunks:
         rows = store.load(*c)
