@@ -194,7 +194,7 @@ def linear_covariance(model, nominal: Nominal, errors) -> LinearCovariance:
                         np.concatenate([t_hat, np.zeros(3)]) @ move,
                         np.concatenate([h, np.zeros(3)]) @ move])
     xp = states[tp]
-    d, w = xp[:3] - model.moon_position(tp), xp[3:] - model.moon_velocity(tp)
+    d = xp[:3] - model.moon_position(tp)
     dhat = d / np.linalg.norm(d)
     row_p = np.concatenate([dhat, np.zeros(3)])
 
@@ -225,8 +225,7 @@ def linear_covariance(model, nominal: Nominal, errors) -> LinearCovariance:
         q_blocks.append(np.diag([s_m2, s_p2, s_p2, b.ignition_sigma_s ** 2]))
     j_e = np.array(cols_e).T  # (4, P)
     j_p = np.array(cols_p)[None, :]  # (1, P)
-    # a perilune's epoch can move across the arc start of a burn before it only through that burn's
-    # ignition; the first-order term is zero (d_hat . w = 0), so row_p alone is exact to first order
+    # the perilune's epoch shift does not enter its altitude to first order (d_hat . w = 0 there)
     jac = np.vstack([j_e[0:1], j_p, j_e[1:2], j_e[2:4]])
     n = sum(q.shape[0] for q in q_blocks)
     q = np.zeros((n, n))
