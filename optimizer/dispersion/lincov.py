@@ -13,10 +13,11 @@ Each error enters linearly at its own epoch:
 * pointing angles ``a, b`` about the axes ``e1, e2`` normal to ``u``: ``dv = |Δv| (a e1 + b e2)``;
 * ignition ``dt`` late with the same inertial Δv: ``dr = -Δv dt``, ``dv = 0`` just after the burn.
 
-Events are moved to first order: the entry crossing ``|r| = R`` by ``dt_e = -(r.dr)/(r.v)`` and
-the perilune (``d.w = 0``, ``d``, ``w`` the position and velocity relative to the Moon) by
-``dt_p = -(w.dr + d.dv)/(d/dt)(d.w)``.  The perilune altitude changes by ``d_hat.dr`` (its rate is
-zero there); the entry flight-path angle by its gradient at the entry state (central differences).
+Events are moved to first order: the entry crossing ``|r| = R`` by ``dt_e = -(r.dr)/(r.v)``, the
+state there by ``xdot dt_e``, and the entry flight-path angle by its gradient at the entry state
+(central differences).  The perilune altitude changes by ``d_hat.dr`` at the nominal perilune epoch
+(``d`` the position relative to the Moon): the distance's rate is zero there, so the shift of the
+perilune epoch does not enter to first order.
 Sigmas follow from ``J Q J^T`` with ``Q`` the error model's covariance.
 """
 
