@@ -222,7 +222,11 @@ def _verdict(reason: str) -> str:
 
 def evaluate(model, nominal: Nominal, y0, burns, rtol=DISPERSION_RTOL, atol=DISPERSION_ATOL) -> dict:
     """Propagate one (perturbed) execution and return its :func:`outcome`."""
+    # with an entry target, every inbound crossing of the entry radius stops the arc, so the path can
+    # never reach Earth's surface: the Earth-impact event is left out (one event function less)
+    entry = nominal.target == "entry"
+    events = tuple(e for e in EVENTS if not (entry and e == "impact_earth"))
     arcs = propagate_burns(model, nominal.start_epoch, y0, burns, max(nominal.t_end, *(b[0] for b in burns))
-                           if burns else nominal.t_end, events=EVENTS, entry_radius=nominal.entry_radius_km,
-                           terminal=("entry",) if nominal.target == "entry" else (), rtol=rtol, atol=atol)
+                           if burns else nominal.t_end, events=events, entry_radius=nominal.entry_radius_km,
+                           terminal=("entry",) if entry else (), rtol=rtol, atol=atol)
     return outcome(arcs, model, nominal)
