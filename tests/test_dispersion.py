@@ -265,3 +265,20 @@ def test_linear_map_through_two_burns_matches_propagation(case):
     for m, name in enumerate(OUT):
         actual = df[name].to_numpy() - lin.nominal[name]
         assert np.corrcoef(pred[:, m], actual)[0, 1] > 0.99, name
+
+
+def test_transcription_holds_the_solve_to_the_tightened_corridor(case):
+    """The NLP's entry flight-path constraint uses the corridor tightened by the margin."""
+    from dataclasses import replace
+
+    from optimizer.models.factory import build_model
+    from optimizer.transcription import Transcription, phase_layout
+
+    problem = case[0]
+    lo, hi = problem.arrival.flight_path_deg
+    model = build_model(problem.model, problem.start_epoch, problem.latest_epoch())
+    p = replace(problem, arrival=replace(problem.arrival, flight_path_margin_deg=0.3))
+    tr = Transcription(p, model, [1] * len(phase_layout(p)), 2)
+    rows = tr.v.gindex["entry_flight_path"]
+    assert tr.lbg[rows][0] == pytest.approx(math.sin(math.radians(lo + 0.3)), abs=1e-12)
+    assert tr.ubg[rows][0] == pytest.approx(math.sin(math.radians(hi - 0.3)), abs=1e-12)
