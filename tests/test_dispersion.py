@@ -282,3 +282,19 @@ def test_transcription_holds_the_solve_to_the_tightened_corridor(case):
     rows = tr.v.gindex["entry_flight_path"]
     assert tr.lbg[rows][0] == pytest.approx(math.sin(math.radians(lo + 0.3)), abs=1e-12)
     assert tr.ubg[rows][0] == pytest.approx(math.sin(math.radians(hi - 0.3)), abs=1e-12)
+
+
+def test_problem_file_dispersion_table_checked_at_the_door(tmp_path):
+    from pathlib import Path
+
+    from optimizer.problem_file import load_problem
+
+    demo = Path(__file__).resolve().parent.parent / "problems" / "demo-abort.toml"
+    load_problem(demo)  # the demo's table is valid
+    errors = load_error_model(demo)
+    assert errors.burn.pointing_sigma_deg == 0.05 and "invented" in errors.note
+    assert errors.sources["burn.pointing_sigma_deg"].startswith(str(demo))
+    bad = tmp_path / "bad.toml"
+    bad.write_text(demo.read_text().replace("ignition_sigma_s = 0.05", "ignition_sigma = 0.05"))
+    with pytest.raises(ProblemError, match=r"\[dispersion\.burn\]\.ignition_sigma: unknown key"):
+        load_problem(bad)
