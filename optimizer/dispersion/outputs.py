@@ -308,6 +308,9 @@ def _figures(result, plan, problem, folder: Path) -> list:
         for b in (plo, phi):
             if a.min() - 0.2 * np.ptp(a) <= b <= a.max() + 0.2 * np.ptp(a):
                 ax.axvline(b, color=PALETTE["burn"], linestyle="--", linewidth=1, label=f"bound {b:g} km")
+        nom = s["statistics"]["perilune_altitude_km"]["nominal"]
+        if nom is not None:
+            ax.axvline(nom, color=PALETTE["perilune"], linewidth=1, label=f"nominal {nom:.1f} km")
         ax.set_xlabel("perilune altitude, km")
         ax.set_ylabel("samples")
         if ax.get_legend_handles_labels()[0]:
