@@ -23,10 +23,11 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
+from ..constants import GM_EARTH, R_EARTH, R_MOON
 from ..models.factory import build_model
 from ..timescales import format_epoch
 from .errors import ErrorModelError
-from .sampling import (NUMERIC, DISPERSION_ATOL, DISPERSION_RTOL, Nominal, _factor, draw, entry_offsets, evaluate,
+from .sampling import (DISPERSION_ATOL, DISPERSION_RTOL, NUMERIC, Nominal, _factor, draw, entry_offsets, evaluate,
                        navigation_covariance_icrf, perturbed, sample_rng)
 
 __all__ = ["nominal_of", "dispersion_model", "run_samples", "CHUNK", "perturbation_matrix"]
@@ -43,8 +44,6 @@ def nominal_of(plan, problem, model=None) -> Nominal:
     ret = problem.arrival
     corridor = ret.flight_path_deg if ret.target == "entry" else ret.perigee_alt_km
     moon = getattr(model, "moon", None) if model is not None else None
-    from ..constants import GM_EARTH, R_EARTH, R_MOON
-
     return Nominal(start_epoch=float(plan.start_epoch), start_state=tuple(float(x) for x in plan.start_state),
                    burns=tuple((float(b.epoch), tuple(float(x) for x in b.dv))
                                for b in sorted(plan.burns, key=lambda b: b.epoch) if any(b.dv)),
@@ -97,13 +96,14 @@ def _row(index, d, res, nominal: Nominal, nominal_entry) -> dict:
 
 
 def _nominal_entry(model, nominal):
+    """Epoch and state of the unperturbed entry (the origin of the downrange and crossrange axes),
+    or None when the nominal path has no entry after its perilune."""
     res = evaluate(model, nominal, np.asarray(nominal.start_state), [(t, np.asarray(dv)) for t, dv in nominal.burns])
     if not math.isfinite(res["entry_epoch_tdb_s"]):
-        return res, None
-    # the nominal entry state (position and velocity) for the downrange / crossrange axes
+        return None
     y = np.array([res[k] for k in ("entry_x_km", "entry_y_km", "entry_z_km", "entry_vx_kms", "entry_vy_kms",
                                    "entry_vz_kms")])
-    return res, {"t": res["entry_epoch_tdb_s"], "y": y, "res": res}
+    return {"t": res["entry_epoch_tdb_s"], "y": y}
 
 
 def _chunk_task(model, nominal: Nominal, errors, seed: int, start: int, stop: int, nominal_entry) -> list:
@@ -261,7 +261,7 @@ def run_samples(model, nominal: Nominal, errors, samples: int, seed: int, *, wor
         raise ErrorModelError(f"--samples: expected a whole number of at least 1, got {samples!r}")
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
         raise ErrorModelError(f"--seed: expected a whole number of at least 0, got {seed!r}")
-    _, nominal_entry = _nominal_entry(model, nominal)
+    nominal_entry = _nominal_entry(model, nominal)
     definition = {"nominal": repr(nominal), "errors": errors.to_table(), "seed": seed, "chunk": chunk,
                   "rtol": DISPERSION_RTOL, "atol": DISPERSION_ATOL, "model": model.describe()}
     store = _Store(resume_dir, definition)

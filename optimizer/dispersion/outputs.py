@@ -19,7 +19,7 @@ from .. import __version__
 from ..constants import CAUTION
 from ..timescales import format_epoch
 from .lincov import linear_covariance
-from .montecarlo import dispersion_model, nominal_of, perturbation_matrix, run_samples
+from .montecarlo import dispersion_model, nominal_of, run_samples
 from .sampling import DISPERSION_ATOL, DISPERSION_RTOL
 
 __all__ = ["wilson_interval", "summarise", "required_margin", "run_dispersion", "write_dispersion",
