@@ -298,3 +298,17 @@ def test_problem_file_dispersion_table_checked_at_the_door(tmp_path):
     bad.write_text(demo.read_text().replace("ignition_sigma_s = 0.05", "ignition_sigma = 0.05"))
     with pytest.raises(ProblemError, match=r"\[dispersion\.burn\]\.ignition_sigma: unknown key"):
         load_problem(bad)
+
+
+def test_gaussian_share_of_the_linear_estimate():
+    """Normal probabilities: 68.27 % within 1 sigma, 99.73 % within 3 (any statistics table)."""
+    from types import SimpleNamespace
+
+    from optimizer.dispersion.outputs import gaussian_share
+
+    lin = SimpleNamespace(nominal={"entry_flight_path_deg": -6.4}, sigma={"entry_flight_path_deg": 0.5})
+    assert gaussian_share(lin, (-6.9, -5.9)) == pytest.approx(0.6827, abs=1e-4)
+    lin.sigma["entry_flight_path_deg"] = 0.5 / 3
+    assert gaussian_share(lin, (-6.9, -5.9)) == pytest.approx(0.9973, abs=1e-4)
+    lin.nominal["entry_flight_path_deg"] = -6.9  # on the bound: half inside
+    assert gaussian_share(lin, (-6.9, -5.9)) == pytest.approx(0.5, abs=1e-6)

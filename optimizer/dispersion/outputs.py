@@ -82,15 +82,13 @@ def required_margin(stats: dict, corridor, nominal_fpa: float) -> dict:
                     "(common practice: a 3-sigma corridor)"}
 
 
-def _margin_solve(problem, margin: dict, plan, progress) -> dict:
+def _margin_solve(problem, margin: dict, plan, progress, errors) -> dict:
     """One extra solve with ``[return].flight_path_margin_deg`` set to the needed margin."""
     m = margin["margin_deg"]
     out = {"margin_deg": m, "nominal_total_dv_mps": plan.total_dv_mps}
     if not margin["fits"]:
         return {**out, "status": "not solved",
-                "reason": "the corridor is narrower than twice the needed margin"}
-    if problem.arrival.target != "entry":
-        return {**out, "status": "not solved", "reason": "the problem targets a perigee, not the entry corridor"}
+                "reason": "the corridor is narrower than twice the needed margin"}, None
     from ..solver import SolveError, solve
 
     tight = replace(problem, arrival=replace(problem.arrival, flight_path_margin_deg=m))
@@ -100,13 +98,38 @@ def _margin_solve(problem, margin: dict, plan, progress) -> dict:
     try:
         p2 = solve(tight)
     except SolveError as exc:
-        return {**out, "status": "failed", "reason": str(exc)}
+        return {**out, "status": "failed", "reason": str(exc)}, None
     arr = p2.event("entry")
-    return {**out, "status": p2.status, "reason": p2.reason, "total_dv_mps": p2.total_dv_mps,
-            "extra_dv_mps": p2.total_dv_mps - plan.total_dv_mps,
-            "entry_flight_path_deg": None if arr is None else arr.flight_path_deg,
-            "burns": [{"epoch_tdb": format_epoch(b.epoch, 3), "dv_mps": b.dv_mps} for b in p2.burns],
-            "wall_s": time.perf_counter() - tic}
+    out.update(status=p2.status, reason=p2.reason, total_dv_mps=p2.total_dv_mps,
+               extra_dv_mps=p2.total_dv_mps - plan.total_dv_mps,
+               entry_flight_path_deg=None if arr is None else arr.flight_path_deg,
+               burns=[{"epoch_tdb": format_epoch(b.epoch, 3), "dv_mps": b.dv_mps} for b in p2.burns],
+               wall_s=time.perf_counter() - tic)
+    if p2.verified:
+        out["linear_estimate"] = _linear_share(p2, problem, errors)
+    return out, (p2, tight)
+
+
+def _linear_share(plan, problem, errors) -> dict:
+    """Linear-covariance estimate for a plan: entry-angle sigma and the Gaussian share inside the
+    corridor (no Monte Carlo of the new plan; run ``slingback dispersion`` on its folder for that)."""
+    try:
+        model = dispersion_model(plan, problem)
+        lin = linear_covariance(model, nominal_of(plan, problem, model), errors)
+    except (ValueError, RuntimeError) as exc:
+        return {"error": str(exc)}
+    return {"entry_flight_path_sigma_deg": lin.sigma["entry_flight_path_deg"],
+            "share_inside": gaussian_share(lin, problem.arrival.flight_path_deg),
+            "method": "linear covariance, entry angle taken as Gaussian"}
+
+
+def gaussian_share(lin, corridor) -> float:
+    """Share of a Gaussian entry angle (nominal and sigma of ``lin``) inside ``corridor``."""
+    from scipy.stats import norm
+
+    g, sig = lin.nominal["entry_flight_path_deg"], lin.sigma["entry_flight_path_deg"]
+    lo, hi = corridor
+    return float(norm.cdf((hi - g) / sig) - norm.cdf((lo - g) / sig)) if sig > 0 else float(lo <= g <= hi)
 
 
 def run_dispersion(plan, problem, errors, *, samples=1000, seed=0, workers=None, scheduler=None,
@@ -147,13 +170,16 @@ def run_dispersion(plan, problem, errors, *, samples=1000, seed=0, workers=None,
             mc = stats[col]["sigma"]
             rows[col] = {"sigma_linear": lin.sigma[lname], "sigma_monte_carlo": mc,
                          "ratio": mc / lin.sigma[lname] if lin.sigma[lname] > 0 else None}
-        linear = {"seconds": lin.seconds, "sigma": rows, "method": "variational equations (DOP853 rtol 1e-10), "
+        linear = {"seconds": lin.seconds, "sigma": rows,
+                  "share_inside": gaussian_share(lin, ret.flight_path_deg) if ret.target == "entry" else None,
+                  "method": "variational equations (DOP853 rtol 1e-10), "
                   "gravity gradient by central differences; events moved to first order"}
-    margin = None
+    margin, margin_plan = None, None
     if ret.target == "entry" and nominal_values["entry_flight_path_deg"] is not None:
         margin = required_margin(stats, ret.flight_path_deg, nominal_values["entry_flight_path_deg"])
-        margin["solve"] = (_margin_solve(problem, margin, plan, progress) if margin_solve
-                           else {"status": "not solved", "reason": "skipped (--no-margin-solve)"})
+        margin["solve"] = {"status": "not solved", "reason": "skipped (--no-margin-solve)"}
+        if margin_solve:
+            margin["solve"], margin_plan = _margin_solve(problem, margin, plan, progress, errors)
     reasons = df["verdict"].value_counts().to_dict()
     summary = {
         "format": "slingback-dispersion", "format_version": 1, "software": f"slingback {__version__}",
@@ -172,7 +198,7 @@ def run_dispersion(plan, problem, errors, *, samples=1000, seed=0, workers=None,
         "statistics": stats, "linear_covariance": linear, "margin": margin,
         "limitations": LIMITATIONS,
     }
-    return {"samples": df, "summary": summary, "linear": lin, "nominal": nominal}
+    return {"samples": df, "summary": summary, "linear": lin, "nominal": nominal, "margin_plan": margin_plan}
 
 
 LIMITATIONS = [
@@ -191,6 +217,7 @@ FILES = {"samples.csv": "one row per sample: perturbations, perilune, entry, per
          "fpa-histogram.png": "entry flight-path angle histogram with the corridor",
          "entry-points.png": "entry points downrange and crossrange of the nominal entry",
          "perilune-spread.png": "perilune altitude histogram with its allowed range",
+         "margin-plan.json": "the plan solved with the needed flight-path margin (when verified)",
          "report.md": "this report"}
 
 
@@ -218,6 +245,10 @@ def _write(result, plan, problem, folder: Path):
         df.to_csv(f, index=False, float_format="%.10g")
     (folder / "summary.json").write_text(json.dumps(_plain(s), indent=1) + "\n")
     (folder / "error_model.toml").write_text(_error_toml(s["error_model"]))
+    if result.get("margin_plan") is not None and result["margin_plan"][0].verified:
+        from ..export.run import plan_json
+
+        (folder / "margin-plan.json").write_text(json.dumps(plan_json(*result["margin_plan"]), indent=1) + "\n")
     figures = _figures(result, plan, problem, folder)
     (folder / "report.md").write_text(report_section(s, figures, plan))
 
@@ -353,8 +384,10 @@ def report_section(s: dict, figures: list, plan) -> str:
     if s["linear_covariance"].get("error"):
         lines += ["", f"Linear covariance not available: {s['linear_covariance']['error']}."]
     else:
-        lines += ["", f"Linear covariance: {s['linear_covariance']['method']}; "
-                      f"{s['linear_covariance']['seconds']:.2f} s."]
+        lc = s["linear_covariance"]
+        lines += ["", f"Linear covariance: {lc['method']}; {lc['seconds']:.2f} s."
+                  + (f" Its estimate of the share inside the corridor (entry angle taken as Gaussian): "
+                     f"{lc['share_inside']:.2%}." if lc.get("share_inside") is not None else "")]
     m = s.get("margin")
     if m:
         lines += ["", "## Buying margin", "",
@@ -369,7 +402,14 @@ def report_section(s: dict, figures: list, plan) -> str:
                       f"{_f(s['statistics']['entry_flight_path_deg']['nominal'], 6)} | {plan.status} |",
                       f"| with the margin | {m['margin_deg']:.2f} | {sv['total_dv_mps']:.3f} | "
                       f"{_f(sv.get('entry_flight_path_deg'), 6)} | {sv['status']} |", "",
-                      f"The margin costs {sv['extra_dv_mps']:+.3f} m/s."]
+                      f"The margin costs {sv['extra_dv_mps']:+.3f} m/s."
+                      + (" The plan with the margin is in `margin-plan.json` (`slingback check` and "
+                         "`slingback dispersion` read it)." if sv["status"] == "verified" else ""), ""]
+            est = sv.get("linear_estimate") or {}
+            if "share_inside" in est:
+                lines.append(f"Linear estimate for the plan with the margin: entry-angle sigma "
+                             f"{est['entry_flight_path_sigma_deg']:.4f} deg, {est['share_inside']:.2%} inside the "
+                             f"corridor ({est['method']}; `slingback dispersion margin-plan.json` measures it).")
             if sv["status"] != "verified":
                 lines.append(f"The solve with the margin is **not verified** ({sv.get('reason')}); its Δv is not "
                              "an optimum to rely on.")
@@ -391,8 +431,10 @@ def report_section(s: dict, figures: list, plan) -> str:
     lines += ["", "## Limitations", ""] + [f"- {x}" for x in s["limitations"]]
     if figures:
         lines += ["", "## Figures", ""] + [f"![{FILES[f]}]({f})" for f in figures]
+    have_margin_plan = ((s.get("margin") or {}).get("solve") or {}).get("status") == "verified"
     lines += ["", "## Files", ""] + [f"- `{f}`: {t}" for f, t in FILES.items()
-                                     if f in figures or not f.endswith(".png")]
+                                     if (f in figures or not f.endswith(".png"))
+                                     and (f != "margin-plan.json" or have_margin_plan)]
     lines += ["", f"> {CAUTION}", ""]
     return "\n".join(lines)
 
