@@ -26,7 +26,7 @@ __all__ = ["wilson_interval", "summarise", "required_margin", "run_dispersion", 
            "QUANTITIES", "WILSON_SOURCE"]
 
 WILSON_SOURCE = ("E. B. Wilson, 'Probable inference, the law of succession, and statistical inference', "
-                 "J. Am. Stat. Assoc. 22 (1927) 209-212 (page numbers from memory)")
+                 "J. Am. Stat. Assoc. 22 (1927) 209-212 (title and pages from memory)")
 #: Summarised quantities: column, unit, what it is.
 QUANTITIES = {
     "entry_flight_path_deg": ("deg", "flight-path angle at the entry interface"),
