@@ -83,8 +83,9 @@ def _parser() -> argparse.ArgumentParser:
     q.add_argument("--workers", type=int, metavar="K", help="local worker processes (default: every core)")
     q.add_argument("--scheduler", metavar="ADDRESS", help="run the samples on a Dask distributed scheduler")
     q.add_argument("--resume", metavar="DIR", help="save finished samples here and skip those already saved")
-    q.add_argument("--errors", metavar="FILE", help="TOML file with a [dispersion] error-model table "
-                                                     "(a problem file or a small file; default: built-in defaults)")
+    q.add_argument("--errors", action="append", default=[], metavar="FILE",
+                   help="TOML file with a [dispersion] error-model table (a problem file or a small file); "
+                        "repeatable, later files over earlier ones (default: the built-in defaults)")
     q.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                    help="override one error-model value, e.g. burn.pointing_sigma_deg=0.2 (repeatable)")
     q.add_argument("--no-margin-solve", action="store_true",

@@ -312,3 +312,23 @@ def test_gaussian_share_of_the_linear_estimate():
     assert gaussian_share(lin, (-6.9, -5.9)) == pytest.approx(0.9973, abs=1e-4)
     lin.nominal["entry_flight_path_deg"] = -6.9  # on the bound: half inside
     assert gaussian_share(lin, (-6.9, -5.9)) == pytest.approx(0.5, abs=1e-6)
+
+
+def test_error_tables_layer_over_each_other(tmp_path):
+    """Problem file's table, then a small file, then the command line; sources follow each value."""
+    from pathlib import Path
+
+    demo = Path(__file__).resolve().parent.parent / "problems" / "demo-abort.toml"
+    update = tmp_path / "update.toml"
+    cov = (np.eye(6) * [0.04, 0.04, 0.04, 1e-8, 1e-8, 1e-8]).tolist()
+    update.write_text(f"[dispersion.burn]\npointing_sigma_deg = 0.2\n[dispersion.navigation]\n"
+                      f"covariance_km_kms = {cov}\n")
+    em = load_error_model([demo, update], parse_overrides(["burn.ignition_sigma_s=0.3"]))
+    assert em.burn.pointing_sigma_deg == 0.2 and em.sources["burn.pointing_sigma_deg"] == str(update)
+    assert em.burn.magnitude_sigma_fraction == 0.0001 and em.sources["burn.magnitude_sigma_fraction"].startswith(str(demo))
+    assert em.burn.ignition_sigma_s == 0.3 and em.sources["burn.ignition_sigma_s"] == "command line"
+    assert np.allclose(em.navigation.matrix(), cov)
+    # per-axis sigmas after a covariance replace it; the one not given comes back from the defaults
+    em2 = load_error_model([update], parse_overrides(["navigation.position_sigma_km=[0.3,0.3,0.3]"]))
+    assert np.allclose(np.diag(em2.navigation.matrix()), [0.09] * 3 + [1e-10] * 3)
+    assert em2.sources["navigation.velocity_sigma_mps"].startswith("default")

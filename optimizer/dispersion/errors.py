@@ -22,7 +22,7 @@ import numpy as np
 from ..problem_file import ProblemError
 
 __all__ = ["ErrorModel", "BurnErrors", "NavigationErrors", "ErrorModelError", "DEFAULTS",
-           "error_model_from_table", "load_error_model", "parse_overrides"]
+           "error_model_from_table", "error_model_from_layers", "load_error_model", "parse_overrides"]
 
 
 class ErrorModelError(ProblemError):
@@ -126,7 +126,7 @@ def _check_keys(table: dict, name: str, where) -> None:
 
 
 def error_model_from_table(table: dict | None, source: str = "<dict>", overrides: dict | None = None) -> ErrorModel:
-    """Build an :class:`ErrorModel` from a ``[dispersion]`` table over the defaults.
+    """Build an :class:`ErrorModel` from one ``[dispersion]`` table over the defaults.
 
     Parameters
     ----------
@@ -143,25 +143,58 @@ def error_model_from_table(table: dict | None, source: str = "<dict>", overrides
         Naming ``source`` and the key, for unknown keys, wrong types, negative sigmas, a covariance
         that is not 6 x 6, symmetric and positive semi-definite, or both sigmas and a covariance.
     """
-    table = {} if table is None else table
-    if not isinstance(table, dict):
-        raise ErrorModelError(f"{source}: [dispersion]: expected a table, got {table!r}")
+    return error_model_from_layers([] if table is None else [(table, source)], overrides)
 
-    def where(key, sub=""):
-        return f"{source}: [dispersion{'.' + sub if sub else ''}].{key}"
 
-    _check_keys(table, "", lambda k: where(k))
-    merged, sources = {}, {}
+def error_model_from_layers(layers, overrides: dict | None = None) -> ErrorModel:
+    """Build an :class:`ErrorModel` from ``[dispersion]`` tables, each over the ones before it.
+
+    ``layers`` is a sequence of ``(table, source)``: e.g. a problem file's table, then a small
+    file of updated values; a later table's keys replace the earlier ones (a covariance replaces
+    per-axis sigmas and the other way round).  ``overrides`` (command line) come last.
+    """
+    merged, sources, origin_of, notes = {}, {}, {}, []
     for key, (value, *_rest) in DEFAULTS.items():
-        merged[key], sources[key] = value, "default: " + _rest[2]
-    for sub in ("burn", "navigation"):
-        t = table.get(sub, {})
-        if not isinstance(t, dict):
-            raise ErrorModelError(f"{where(sub)}: expected a table, got {t!r}")
-        _check_keys(t, sub, lambda k, s=sub: where(k, s))
-        for key, value in t.items():
-            merged[f"{sub}.{key}"] = value
-            sources[f"{sub}.{key}"] = f"{source}" + (f" ({table['source']})" if "source" in table else "")
+        merged[key], sources[key], origin_of[key] = value, "default: " + _rest[2], f"default {key}"
+    nav_sigmas = ("navigation.position_sigma_km", "navigation.velocity_sigma_mps")
+
+    def sigmas_replace_covariance():
+        """Per-axis sigmas given after a covariance: the covariance goes, a sigma not given comes
+        back from the defaults."""
+        if merged.pop("navigation.covariance_km_kms", None) is not None:
+            for k in nav_sigmas:
+                merged[k], sources[k], origin_of[k] = DEFAULTS[k][0], "default: " + DEFAULTS[k][3], f"default {k}"
+
+    for table, source in layers:
+        if not isinstance(table, dict):
+            raise ErrorModelError(f"{source}: [dispersion]: expected a table, got {table!r}")
+
+        def where(key, sub="", source=source):
+            return f"{source}: [dispersion{'.' + sub if sub else ''}].{key}"
+
+        _check_keys(table, "", lambda k: where(k))
+        note = table.get("source", "")
+        if not isinstance(note, str):
+            raise ErrorModelError(f"{where('source')}: expected a text saying where the values come from")
+        if note:
+            notes.append(note)
+        for sub in ("burn", "navigation"):
+            t = table.get(sub, {})
+            if not isinstance(t, dict):
+                raise ErrorModelError(f"{where(sub)}: expected a table, got {t!r}")
+            _check_keys(t, sub, lambda k, s=sub: where(k, s))
+            if sub == "navigation" and "covariance_km_kms" in t:
+                if any(k in t for k in ("position_sigma_km", "velocity_sigma_mps")):
+                    raise ErrorModelError(f"{where('covariance_km_kms', sub)}: give either a covariance or "
+                                          "per-axis sigmas, not both")
+                for k in nav_sigmas:
+                    merged.pop(k, None)
+            elif sub == "navigation" and any(k in t for k in ("position_sigma_km", "velocity_sigma_mps")):
+                sigmas_replace_covariance()
+            for key, value in t.items():
+                merged[f"{sub}.{key}"] = value
+                sources[f"{sub}.{key}"] = source + (f" ({note})" if note else "")
+                origin_of[f"{sub}.{key}"] = where(key, sub)
     for key, value in (overrides or {}).items():
         sub, _, leaf = key.partition(".")
         if sub not in ("burn", "navigation") or leaf not in TABLE_KEYS[sub]:
@@ -169,13 +202,15 @@ def error_model_from_table(table: dict | None, source: str = "<dict>", overrides
             near = difflib.get_close_matches(key, known, n=1)
             raise ErrorModelError(f"command line: --set {key}: unknown key"
                                   + (f"; did you mean {near[0]!r}?" if near else ""))
-        merged[key], sources[key] = value, "command line"
-    note = table.get("source", "")
-    if not isinstance(note, str):
-        raise ErrorModelError(f"{where('source')}: expected a text saying where the values come from")
+        if key == "navigation.covariance_km_kms":
+            for k in nav_sigmas:
+                merged.pop(k, None)
+        elif key in nav_sigmas:
+            sigmas_replace_covariance()
+        merged[key], sources[key], origin_of[key] = value, "command line", f"command line: --set {key}"
 
     def origin(key):
-        return "command line: --set " + key if sources[key] == "command line" else where(*reversed(key.split(".")))
+        return origin_of[key]
 
     def sigma(key):
         x = merged[key]
@@ -198,11 +233,6 @@ def error_model_from_table(table: dict | None, source: str = "<dict>", overrides
         raise ErrorModelError(f"{origin('navigation.frame')}: expected \"rtn\" or \"icrf\", got {frame!r}")
     if "navigation.covariance_km_kms" in merged:
         key = "navigation.covariance_km_kms"
-        given = {k for k in ("navigation.position_sigma_km", "navigation.velocity_sigma_mps")
-                 if not sources[k].startswith("default")}
-        if given:
-            raise ErrorModelError(f"{origin(key)}: give either a covariance or per-axis sigmas, not both "
-                                  f"(also set: {', '.join(sorted(given))})")
         cov = merged[key]
         if not (isinstance(cov, list) and len(cov) == 6
                 and all(isinstance(r, list) and len(r) == 6 and all(_number(v) for v in r) for r in cov)):
@@ -221,13 +251,20 @@ def error_model_from_table(table: dict | None, source: str = "<dict>", overrides
         m = np.diag(np.square(pos + vel))
     nav = NavigationErrors(frame=frame, covariance=tuple(tuple(float(v) for v in r) for r in m))
     sources.pop("navigation.covariance_km_kms", None)
-    return ErrorModel(burn=burn, navigation=nav, sources=sources, note=note)
+    return ErrorModel(burn=burn, navigation=nav, sources=sources, note="; ".join(notes))
 
 
-def load_error_model(path=None, overrides: dict | None = None) -> ErrorModel:
-    """Read the ``[dispersion]`` table of a TOML file (None: defaults), then the overrides."""
-    if path is None:
-        return error_model_from_table(None, "defaults", overrides)
+def load_error_model(paths=None, overrides: dict | None = None) -> ErrorModel:
+    """Read the ``[dispersion]`` tables of TOML files in order (each over the ones before; None or
+    empty: the defaults), then the overrides."""
+    if paths is None:
+        paths = []
+    elif isinstance(paths, (str, Path)):
+        paths = [paths]
+    return error_model_from_layers([(_read_table(p), str(p)) for p in paths], overrides)
+
+
+def _read_table(path) -> dict:
     source = str(path)
     try:
         data = tomllib.loads(Path(path).read_bytes().decode("utf-8"))
@@ -240,7 +277,7 @@ def load_error_model(path=None, overrides: dict | None = None) -> ErrorModel:
     if "dispersion" not in data:
         raise ErrorModelError(f"{source}: [dispersion]: missing; expected the error-model table "
                               "(docs/dispersion-format.md)")
-    return error_model_from_table(data["dispersion"], source, overrides)
+    return data["dispersion"]
 
 
 def parse_overrides(items) -> dict:
