@@ -495,6 +495,8 @@ def describe_problem(problem: Problem) -> str:
     a = p.arrival
     arrive = (f"entry interface {a.entry_radius_km - R_EARTH:g} km, flight-path angle {list(a.flight_path_deg)} deg"
               if a.target == "entry" else f"vacuum perigee {list(a.perigee_alt_km)} km")
+    if a.target == "entry" and a.flight_path_margin_deg:
+        arrive += f" (solved with a {a.flight_path_margin_deg:g} deg margin on both sides)"
     lines = [f"scenario   {p.name}" + (f" ({p.vehicle})" if p.vehicle else ""),
              f"model      {p.model.kind}" + (f", continuation {' -> '.join(p.model.continuation)}"
                                                if p.model.continuation else ""),
