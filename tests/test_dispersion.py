@@ -238,6 +238,7 @@ def test_cli_writes_the_folder_and_refuses_unverified_plans(case, tmp_path):
     assert s["samples"] == 12 and s["inside"]["count"] <= 12 and "Wilson" in s["inside"]["source"]
     assert s["error_model"]["sources"]["burn.magnitude_sigma_fraction"].startswith(str(errs))
     assert "not flight-certified" in (out / "report.md").read_text()
+    assert load_error_model(out / "error_model.toml") == load_error_model(errs)  # reusable with --errors
     assert run(["dispersion", str(tmp_path / "run"), "--samples", "2", "--out", str(out), "--quiet"])[0] == 2
     d = plan_json(plan, problem)
     d["status"] = "unverified"
