@@ -73,6 +73,24 @@ def _parser() -> argparse.ArgumentParser:
     q.add_argument("--scheduler", metavar="ADDRESS", help="run the cells on a Dask distributed scheduler")
     q.add_argument("--resume", metavar="DIR", help="save finished cells here and skip those already saved")
     quiet_json(q)
+    q = add("dispersion", "Monte Carlo and linear covariance of a verified plan's execution and navigation "
+                          "errors; the corridor share and the margin it needs (docs/dispersion-format.md)")
+    q.add_argument("plan", metavar="PLAN_OR_RUN_FOLDER", help="a plan.json or a run folder holding one")
+    q.add_argument("--samples", type=int, default=1000, metavar="N", help="Monte Carlo samples (default 1000)")
+    q.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
+    q.add_argument("--out", metavar="DIR", help="output folder (default: outputs/<plan name>-dispersion)")
+    q.add_argument("--force", action="store_true", help="replace an existing output folder")
+    q.add_argument("--workers", type=int, metavar="K", help="local worker processes (default: every core)")
+    q.add_argument("--scheduler", metavar="ADDRESS", help="run the samples on a Dask distributed scheduler")
+    q.add_argument("--resume", metavar="DIR", help="save finished samples here and skip those already saved")
+    q.add_argument("--errors", action="append", default=[], metavar="FILE",
+                   help="TOML file with a [dispersion] error-model table (a problem file or a small file); "
+                        "repeatable, later files over earlier ones (default: the built-in defaults)")
+    q.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                   help="override one error-model value, e.g. burn.pointing_sigma_deg=0.2 (repeatable)")
+    q.add_argument("--no-margin-solve", action="store_true",
+                   help="skip the extra solve with the flight-path margin the spread needs")
+    quiet_json(q)
     return p
 
 
@@ -235,8 +253,52 @@ def cmd_sweep(args) -> int:
     return EXIT_OK
 
 
+def cmd_dispersion(args) -> int:
+    from .dispersion import load_error_model, parse_overrides
+    from .dispersion.outputs import progress_bar, read_verified_plan, run_dispersion, write_dispersion
+    from .export.run import refuse_existing
+
+    errors = load_error_model(args.errors, parse_overrides(args.set))  # bad input stops here
+    plan, problem, source = read_verified_plan(args.plan)
+    if not plan.verified:
+        _err(f"{source}: the plan is {plan.status}, not verified; a dispersion of it means nothing")
+        return EXIT_UNVERIFIED
+    out = Path(args.out) if args.out else Path("outputs") / f"{plan.name}-dispersion"
+    refuse_existing(out, args.force)
+    update, close = progress_bar(args.samples, args.quiet)
+    try:
+        result = run_dispersion(plan, problem, errors, samples=args.samples, seed=args.seed,
+                                workers=args.workers, scheduler=args.scheduler, resume_dir=args.resume,
+                                progress=_progress(args), sample_progress=update,
+                                margin_solve=not args.no_margin_solve)
+    finally:
+        close()
+    write_dispersion(result, plan, problem, out, force=args.force)
+    s = result["summary"]
+    ins = s["inside"]
+    if args.json:
+        print(json.dumps({"out": str(out), "samples": s["samples"], "inside": ins,
+                          "margin": s["margin"], "caution": CAUTION}, indent=1, default=str))
+    else:
+        print(f"{plan.name}: {ins['count']} of {s['samples']} samples inside the corridor "
+              f"({ins['share']:.1%}, 95 % Wilson {ins['wilson_95'][0]:.1%}-{ins['wilson_95'][1]:.1%}); "
+              f"folder {out}")
+        g = s["statistics"]["entry_flight_path_deg"]
+        lin = (s["linear_covariance"].get("sigma") or {}).get("entry_flight_path_deg", {})
+        print(f"  entry flight-path angle sigma {g['sigma']:.4f} deg (linear covariance "
+              f"{lin.get('sigma_linear', float('nan')):.4f} deg)")
+        m = s["margin"]
+        if m:
+            sv = m["solve"]
+            extra = (f"; a solve with it costs {sv['total_dv_mps']:.3f} m/s ({sv['extra_dv_mps']:+.3f}, "
+                     f"{sv['status']})" if sv.get("total_dv_mps") is not None else f"; {sv.get('reason')}")
+            print(f"  3-sigma margin needed: {m['margin_deg']:.2f} deg{extra}")
+    return EXIT_OK
+
+
 COMMANDS = {"solve": cmd_solve, "check": cmd_check, "demo": cmd_demo, "models": cmd_models,
-            "plot": cmd_plot, "validate": cmd_validate, "sweep": cmd_sweep}
+            "plot": cmd_plot, "validate": cmd_validate, "sweep": cmd_sweep,
+            "dispersion": cmd_dispersion}
 
 if __name__ == "__main__":  # pragma: no cover
     sys.exit(main())

@@ -105,6 +105,9 @@ class ReturnSpec:
         Range of the arrival orbit's inclination to the ICRF equator.
     max_duration_days : float or None
         Longest time from the start to the arrival.
+    flight_path_margin_deg : float
+        Tightens the flight-path corridor on both sides for the solve (bought margin against
+        dispersions); the corridor itself, ``flight_path_deg``, is what arrivals are judged by.
     """
 
     target: str = "entry"
@@ -114,6 +117,13 @@ class ReturnSpec:
     epoch_window: tuple[float, float] | None = None
     inclination_deg: tuple[float, float] | None = None
     max_duration_days: float | None = None
+    flight_path_margin_deg: float = 0.0
+
+    @property
+    def solve_flight_path_deg(self) -> tuple[float, float]:
+        """The corridor the solve must meet: ``flight_path_deg`` tightened by the margin."""
+        lo, hi = self.flight_path_deg
+        return lo + self.flight_path_margin_deg, hi - self.flight_path_margin_deg
 
 
 @dataclass(frozen=True)

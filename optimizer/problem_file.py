@@ -17,9 +17,10 @@ import difflib
 import math
 import re
 import tomllib
+from dataclasses import replace
+from pathlib import Path
 
 import tomli_w
-from pathlib import Path
 
 from .constants import ENTRY_INTERFACE_ALT, GM_EARTH, R_EARTH
 from .frames import kepler_to_cartesian
@@ -40,9 +41,10 @@ MODEL_DESCRIPTIONS = {
 }
 
 SECTIONS = ("case", "spacecraft", "model", "start", "burn", "lunar", "return", "objective", "tolerances",
-            "mesh", "limits", "sweep")
-#: Sections read by another layer: a ``[sweep]`` table is checked by :mod:`optimizer.trade`.
-OTHER_LAYERS = ("sweep",)
+            "mesh", "limits", "sweep", "dispersion")
+#: Sections read by another layer: a ``[sweep]`` table is checked by :mod:`optimizer.trade`, a
+#: ``[dispersion]`` table (the error model) by :mod:`optimizer.dispersion.errors`.
+OTHER_LAYERS = ("sweep", "dispersion")
 #: The keys each table may hold (checked first, so a typo is reported as a typo).
 KEYS = {
     "": SECTIONS,
@@ -56,7 +58,7 @@ KEYS = {
     "burn": ("window", "max_dv_mps", "direction", "leg"),
     "lunar": ("perilune_altitude_km",),
     "return": ("target", "entry_altitude_km", "flight_path_deg", "perigee_altitude_km", "epoch_window",
-               "inclination_deg", "max_duration_days"),
+               "inclination_deg", "max_duration_days", "flight_path_margin_deg"),
     "objective": ("kind", "dv_budget_mps", "mps_per_day"),
     "tolerances": ("entry_position_km", "flight_path_deg", "perilune_altitude_km", "perigee_altitude_km"),
     "mesh": ("segments", "steps", "max_refinements"),
@@ -111,6 +113,10 @@ def load_problem(path) -> Problem:
         from .trade import parse_sweep_spec
 
         parse_sweep_spec(data["sweep"], problem, source)
+    if "dispersion" in data:  # the error model, checked at the door too
+        from .dispersion.errors import error_model_from_table
+
+        error_model_from_table(data["dispersion"], source)
     return problem
 
 
@@ -319,8 +325,19 @@ def _arrival(t: "_Table", start, burns) -> ReturnSpec:
         epoch_window=window,
         inclination_deg=t.pair("inclination_deg", None, lo=0.0, hi=180.0),
         max_duration_days=t.number("max_duration_days", None, lo=0.0, hi=100.0, lo_open=True))
+    spec = _flight_path_margin(t, spec)
     t.done()
     return spec
+
+
+def _flight_path_margin(t: "_Table", spec: ReturnSpec) -> ReturnSpec:
+    """``[return].flight_path_margin_deg``: tightens the corridor on both sides for the solve."""
+    lo, hi = spec.flight_path_deg
+    margin = t.number("flight_path_margin_deg", 0.0, lo=0.0, hi=90.0)
+    if 2.0 * margin >= hi - lo:
+        raise t.error("flight_path_margin_deg", f"a margin below half the corridor width ({(hi - lo) / 2:g} deg)",
+                      margin)
+    return replace(spec, flight_path_margin_deg=margin)
 
 
 def _objective(t: "_Table") -> Objective:
@@ -502,6 +519,8 @@ def describe_problem(problem: Problem) -> str:
     a = p.arrival
     arrive = (f"entry interface {a.entry_radius_km - R_EARTH:g} km, flight-path angle {list(a.flight_path_deg)} deg"
               if a.target == "entry" else f"vacuum perigee {list(a.perigee_alt_km)} km")
+    if a.target == "entry" and a.flight_path_margin_deg:
+        arrive += f" (solved with a {a.flight_path_margin_deg:g} deg margin on both sides)"
     lines = [f"case       {p.name}" + (f" ({p.spacecraft})" if p.spacecraft else "")]
     if p.propulsion is not None:
         s = p.propulsion
@@ -556,6 +575,8 @@ def problem_to_dict(problem: Problem) -> dict:
         ret["inclination_deg"] = list(a.inclination_deg)
     if a.max_duration_days is not None:
         ret["max_duration_days"] = a.max_duration_days
+    if a.flight_path_margin_deg:
+        ret["flight_path_margin_deg"] = a.flight_path_margin_deg
     objective = {"kind": p.objective.kind, "mps_per_day": p.objective.mps_per_day}
     if p.objective.dv_budget_mps is not None:
         objective["dv_budget_mps"] = p.objective.dv_budget_mps

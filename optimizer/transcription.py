@@ -343,7 +343,7 @@ class Transcription:
         r, vel = z[0:3], z[3:6]
         if ret.target == "entry":
             v.con("entry_radius", ca.norm_2(r), ret.entry_radius_km / sc.lu, ret.entry_radius_km / sc.lu)
-            lo, hi = (math.sin(math.radians(a)) for a in ret.flight_path_deg)
+            lo, hi = (math.sin(math.radians(a)) for a in ret.solve_flight_path_deg)
             v.con("entry_flight_path", ca.dot(r, vel) / (ca.norm_2(r) * ca.norm_2(vel)), lo, hi)
         else:
             lo, hi = ((model.earth.radius + a) / sc.lu for a in ret.perigee_alt_km)
