@@ -146,7 +146,10 @@ def test_check_refuses_a_plan_whose_start_was_moved(tmp_path, capsys):
     from export_fixture import make_case
     from optimizer.cli import main
 
+    from optimizer.problem_file import problem_to_dict
+
     problem, model, plan = make_case()
+    plan.problem = problem_to_dict(problem)  # what a run folder's plan.json carries
     good = tmp_path / "good.json"
     good.write_text(json.dumps(plan.to_dict()))
     assert main(["check", str(good), "--quiet"]) == 0
