@@ -548,6 +548,24 @@ def global_solve(problem, model, solve_from, say=lambda m: None):
     return best, record
 
 
+def search_summary(record) -> str:
+    """One sentence: the seeds tried, why those that failed did, and how each start ended."""
+    seeds = record.get("seeds", [])
+    why = {}
+    for s in seeds:
+        if s.get("screened_dv_mps") is None:
+            why[s["outcome"]] = why.get(s["outcome"], 0) + 1
+    ok = len(seeds) - sum(why.values())
+    text = f"the global search screened {len(seeds)} seeds ({ok} met the ranges"
+    text += ("; " + ", ".join(f"{n} {w}" for w, n in why.items())) if why else ""
+    text += ")"
+    starts = record.get("starts", [])
+    if starts:
+        text += "; starts solved: " + ", ".join(
+            f"burn {s['burn']} at {s['epoch_tdb_s']:.0f} s ({s['family']}): {s.get('status')}" for s in starts)
+    return text
+
+
 def _rest_epoch(problem, j, t_peri):
     """Where a burn held at zero sits in a start: its window's middle (before/after the perilune)."""
     lo, hi = problem.burns[j].window

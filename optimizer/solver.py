@@ -33,6 +33,7 @@ from .propagate import propagate
 from .seed import circumlunar
 from .transcription import Transcription, is_injection
 from .events import LUNAR_SPHERE_KM, lunar_encounter
+from .search import search_summary
 from .verify import arrival_record, make_burn, perilune_record, verify
 
 GUESS_RTOL = 1e-9
@@ -957,23 +958,33 @@ def _solve_impl(problem, warm, progress, model, ipopt_options, _staged) -> Plan:
         say("initial guess: targeted coast")
         try:
             states, dvs, slens, start = initial_guess(problem, model, tr)
-        except SolveError:
+        except SolveError as exc:
             if searched is not None:
-                return searched
+                return _with_search_reason(searched, record)
+            if record is not None:
+                raise SolveError(f"{exc}; {search_summary(record)}") from None
             raise
         x0 = tr.guess_vector(states, dvs, slens, start)
         plan = _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start)
         if searched is not None or record is not None:
             plan.solver["search"] = {**(record or {}), "fallback": plan.status}
+            plan = _with_search_reason(plan, record)
         return plan
     return _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start)
+
+
+def _with_search_reason(plan, record):
+    """An unverified answer's reason also says what the global search tried and why it failed."""
+    if not plan.verified and record is not None:
+        plan.reason = f"{plan.reason}; {search_summary(record)}" if plan.reason else search_summary(record)
+    return plan
 
 
 def _global_search(problem, model, tr, say, ipopt_options, stages, t_start):
     """The global layer (:mod:`optimizer.search`): screened seeds over every burn window, the most
     promising solved from their own paths.  Returns (the cheapest verified plan, else the last
     plan tried, else None; the search record), the record also under ``plan.solver["search"]``."""
-    from .search import global_solve
+    from .search import global_solve  # noqa: E402  (the layer above the loop)
 
     st = problem.start
     tried = []
