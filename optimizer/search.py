@@ -46,9 +46,9 @@ SKIP_RATIO, SKIP_MPS = 1.5, 1.0
 #: Targeting iterations per seed, of which at most POLISH_ITERS lower the norm of a point that
 #: already meets the ranges (the local NLP polishes; screening only ranks), and the first
 #: trust-region radius (km/s).
-TARGET_ITERS, POLISH_ITERS, FIRST_RADIUS = 25, 6, 0.02
+TARGET_ITERS, POLISH_ITERS, FIRST_RADIUS = 25, 3, 0.02
 #: Targeting iterations for the families other than the ballistic path's own side and sense.
-OTHER_ITERS = 15
+OTHER_ITERS = 8
 #: Finite-difference step of the targeting Jacobian (km/s); targeting stops on a feasible point
 #: whose next least-norm step is shorter than STOP_STEP (km/s).
 FD_STEP, STOP_STEP = 1e-4, 1e-5
@@ -328,7 +328,9 @@ def target(problem, model, t_b, y_b, t_end, *, direction="free", leg="outbound",
                   "radius", radius)
         if np.linalg.norm(full) < STOP_STEP and viol <= 1.0:
             break
-        if np.linalg.norm(basis @ c) > 1.5 * cap_kms or (it >= 2 and np.linalg.norm(basis @ (c + full)) > 3.0 * cap_kms):
+        estimate = np.linalg.norm(basis @ (c + full))  # the linearised least-norm answer
+        if (np.linalg.norm(basis @ c) > 1.5 * cap_kms or (it == 0 and estimate > 4.0 * cap_kms)
+                or (it >= 2 and estimate > 3.0 * cap_kms)):
             return None, f"over the burn's cap ({1000 * cap_kms:g} m/s)", None
         trial = measure(c + d)
         better = False
@@ -341,8 +343,6 @@ def target(problem, model, t_b, y_b, t_end, *, direction="free", leg="outbound",
             fresh = False
             jac = jac + np.outer(h_t - h - jac @ d, d) / float(d @ d)  # Broyden's update
             c, h, lo, hi, viol = c + d, h_t, lo_t, hi_t, v_t
-            if viol <= 1.0:
-                jac = None  # polishing the norm on the corridor's edge: an exact Jacobian each step
             if np.linalg.norm(d) >= 0.99 * radius:
                 radius *= 2.0
         else:
@@ -416,10 +416,11 @@ def screen(problem, model, say=lambda m: None) -> tuple[list[Seed], float | None
         def run(t_b, side, sense, cap, state):
             y_b = np.asarray(arc.state(t_b), dtype=float) if t_b > arc.t[0] else np.asarray(problem.start.state)
             t0 = time.perf_counter()
-            iters = TARGET_ITERS if side > 0 and sense > 0 else OTHER_ITERS
+            primary = side > 0 and sense > 0
+            iters = TARGET_ITERS if primary else OTHER_ITERS
             dv, why, new = target(problem, model, t_b, y_b, t_end, direction=b.direction, leg=b.leg,
                                   moon_side=side, earth_sense=sense, cap_kms=cap, start=state, iters=iters)
-            if dv is None and state is not None:  # the neighbour's answer led nowhere: from zero
+            if dv is None and state is not None and primary:  # the neighbour's answer led nowhere: from zero
                 dv, why, new = target(problem, model, t_b, y_b, t_end, direction=b.direction, leg=b.leg,
                                       moon_side=side, earth_sense=sense, cap_kms=cap, iters=iters)
             return dv, why, new, time.perf_counter() - t0
@@ -449,6 +450,8 @@ def screen(problem, model, say=lambda m: None) -> tuple[list[Seed], float | None
                     continue
                 sweep = [t for t in epochs if t not in ends and t != mid]
                 state = next(r[2] for _, r in tried if r[0] is not None)
+            if (side, sense) != (1.0, 1.0):  # other families on every other epoch (the ends stay)
+                sweep = [t for k, t in enumerate(epochs) if t in sweep and (k % 2 == 0 or k == len(epochs) - 1)]
             for t_b in sweep:
                 if t_b == mid:
                     dv, why, new, wall = probes[name]
