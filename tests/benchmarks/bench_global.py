@@ -23,7 +23,7 @@ reference, end-to-end seconds; and the goals of the issue, met or missed:
 The table is also written to ``outputs/bench_global-<half>.csv`` (through a temporary file).
 
 Run: python tests/benchmarks/bench_global.py [--half tune|heldout|all] [--cases N] [--workers W]
-     [--recompute-references] [--seeds S [S ...]]
+     [--recompute-references] [--seeds S [S ...]] [--cached-only] [--rescore CSV]
 """
 
 from __future__ import annotations
@@ -80,11 +80,25 @@ def main(argv=None):
     ap.add_argument("--workers", type=int, default=1, help="solver processes (timing figures: 1)")
     ap.add_argument("--ref-workers", type=int, default=2, help="processes for missing references")
     ap.add_argument("--recompute-references", action="store_true")
+    ap.add_argument("--cached-only", action="store_true",
+                    help="only cases already generated; no reference computed (missing ones: no reference)")
+    ap.add_argument("--csv", help="write the table here (default outputs/bench_global-<half>.csv)")
+    ap.add_argument("--rescore", metavar="CSV[,CSV...]",
+                    help="no solving: re-join the tables of earlier runs with the references now cached")
     args = ap.parse_args(argv)
 
+    if args.rescore:
+        return rescore(args.rescore)
     seed_list = args.seeds if args.seeds else gc.seeds(args.half, args.cases)
-    cases = gc.load_cases(seed_list, args.ref_workers)
-    refs = gr.load_references(cases, args.ref_workers, args.recompute_references)
+    if args.cached_only:
+        cache = gc._read_json(gc.CASES_FILE)
+        seed_list = [s for s in seed_list if cache.get(str(s), {}).get("generator") == gc.GENERATOR_VERSION]
+        cases = gc.load_cases(seed_list)
+        stored = gc._read_json(gr.REF_FILE)
+        refs = {c.key: stored.get(c.key) for c in cases}
+    else:
+        cases = gc.load_cases(seed_list, args.ref_workers)
+        refs = gr.load_references(cases, args.ref_workers, args.recompute_references)
     print(f"{len(cases)} cases ({args.half if not args.seeds else 'chosen seeds'}), generator "
           f"{gc.GENERATOR_VERSION}, scanner {gr.SCANNER_VERSION}; {args.workers} solver process(es); "
           f"load average {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores", flush=True)
@@ -109,7 +123,8 @@ def main(argv=None):
             print("\nnot verified:")
             print(bad[["status", "reason"]].to_string())
     summarise(df, wall)
-    out = os.path.join(ROOT, "outputs", f"bench_global-{args.half if not args.seeds else 'seeds'}.csv")
+    out = args.csv or os.path.join(ROOT, "outputs", f"bench_global-{args.half if not args.seeds else 'seeds'}.csv")
+    out = os.path.abspath(out)
     fd, tmp = tempfile.mkstemp(dir=os.path.dirname(out), prefix=".tmp-", suffix=".csv")
     os.close(fd)
     df.to_csv(tmp)
@@ -120,8 +135,32 @@ def main(argv=None):
     return 0
 
 
+def rescore(path):
+    """Re-join a written table with the references now in the cache, and print the goals."""
+    paths = path.split(",")  # several partial runs may be joined: a,b,c
+    df = pd.concat([pd.read_csv(p, dtype={"layout": str}) for p in paths]).drop_duplicates("seed", keep="last").set_index("seed")
+    cache = gc._read_json(gc.CASES_FILE)
+    stored = gc._read_json(gr.REF_FILE)
+    for seed in df.index:
+        case = gc.case_from_dict(cache[str(seed)])
+        ref = stored.get(case.key) or {}
+        reference = ref.get("reference_mps", np.nan) if "error" not in ref else np.nan
+        df.loc[seed, "reference_mps"] = reference
+        df.loc[seed, "scan_mps"] = np.nan if ref.get("best_scan_mps") is None else ref["best_scan_mps"]
+        dv, ok = df.loc[seed, "dv_mps"], df.loc[seed, "status"] == "verified"
+        df.loc[seed, "ratio"] = dv / reference if reference and reference > 0 else np.nan
+        df.loc[seed, "within"] = bool(ok and dv <= reference * (1 + WITHIN_REL) + WITHIN_ABS)
+        df.loc[seed, "above_bound"] = bool(ok and dv > case.planted_bound_mps * (1 + ABOVE_REL) + ABOVE_ABS)
+    with pd.option_context("display.width", 250, "display.max_colwidth", 60, "display.max_rows", 500):
+        print(df.drop(columns=["reason", "burn_mps"]).to_string(float_format=lambda x: f"{x:.4f}"))
+    summarise(df, float("nan"))
+    return 0
+
+
 def _row(case, refs, r):
     ref = refs.get(case.key) or {}
+    if "error" in ref:
+        ref = {}
     reference = ref.get("reference_mps", np.nan)
     row = {**case.row(), **{k: r[k] for k in ("status", "dv_mps")},
            "reference_mps": reference, "scan_mps": ref.get("best_scan_mps"),
@@ -139,6 +178,9 @@ def _row(case, refs, r):
 
 def summarise(df, wall):
     n = len(df)
+    missing = int(df.reference_mps.isna().sum())
+    if missing:
+        print(f"\n{missing} case(s) without a reference yet: they count as not within")
     ver = (df.status == "verified").sum()
     within = df.within.sum()
     above = int(df.above_bound.sum())

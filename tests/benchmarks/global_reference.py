@@ -49,9 +49,9 @@ sys.path.insert(0, HERE)
 import global_cases as gc  # noqa: E402
 from optimizer.propagate import VERIFY_ATOL, VERIFY_RTOL, propagate  # noqa: E402
 
-SCAN_RTOL = 1e-9
+SCAN_RTOL = 1e-8
 FD_STEP = 1e-3  # m/s
-COLD_EVERY = 5
+COLD_EVERY = 10
 REF_FILE = os.path.join(HERE, "global_references.json")
 SCANNER_VERSION = "scan-2"
 
@@ -135,7 +135,7 @@ class EpochShooter:
             dv = dv + step
         return dv
 
-    def solve(self, dv0, maxiter=20):
+    def solve(self, dv0, maxiter=15):
         dv0 = np.asarray(dv0, dtype=float)
         if not np.any(dv0):
             dv0 = np.full(3, 1e-3)
@@ -180,7 +180,7 @@ def scan_case(case, say=lambda msg: None) -> dict:
         if i % COLD_EVERY == 0 or not warm_ok:
             consider(i, shooters[i].newton_guess())
     for i in range(len(epochs) - 2, -1, -1):  # backward sweep
-        if best[i + 1] is not None and (best[i] is None or best[i + 1][0] < best[i][0] * 0.999):
+        if best[i + 1] is not None and (best[i] is None or best[i + 1][0] < best[i][0] * 0.998):
             consider(i, best[i + 1][1])
     scan = []
     for i, tb in enumerate(epochs):
@@ -200,6 +200,8 @@ def scan_case(case, say=lambda msg: None) -> dict:
             "scan": scan, "propagations": int(sum(s.propagations for s in shooters)),
             "slsqp_solves": int(sum(s.solves for s in shooters)),
             "slsqp_iterations": int(sum(s.iterations for s in shooters)),
+            "settings": {"rtol": SCAN_RTOL, "fd_step_mps": FD_STEP, "cold_every": COLD_EVERY,
+                         "slsqp_maxiter": 15, "slsqp_ftol": 1e-6},
             "wall_s": round(time.perf_counter() - t_start, 1)}
 
 
