@@ -66,7 +66,7 @@ from optimizer.seed import ballistic
 from optimizer.timescales import parse_epoch
 
 GENERATOR_ID = 10_2026  # part of the rng seed: changing it changes every case
-GENERATOR_VERSION = "global-cases-2"
+GENERATOR_VERSION = "global-cases-3"
 HOUR = 3600.0
 DAY = 86400.0
 N_SCAN = 20  # reference scan epochs per case (evenly spaced over burn 1's window)
@@ -376,7 +376,7 @@ def _try_case(seed, rng, t_p):
     burns = [BurnSpec((w0, w1), cap)]
 
     problem0 = Problem(name=f"global-{seed}", start=StateStart(t0, (0.0,) * 6), burns=tuple(burns),
-                       model=spec)
+                       arrival=ReturnSpec(target=target), model=spec)
     model = model_for(problem0)
     y_p = s.perilune_state
     y_b = propagate(model, t_p, y_p, t_b).y[:, -1]
