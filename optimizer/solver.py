@@ -25,7 +25,7 @@ from dataclasses import replace
 import casadi as ca
 import numpy as np
 
-from . import __version__
+from . import __version__, compiled
 from .models import build_model
 from .plan import Burn, Plan
 from .problem import Problem
@@ -434,7 +434,13 @@ def build_solver(tr: Transcription, opts: dict):
     only when IPOPT is to use it).  Measured on the ``bench_abort.py`` case: the same iterates as
     CasADi's own derivatives of the whole graph, constraint Jacobian ~2x cheaper to evaluate."""
     exact = opts.get("ipopt.hessian_approximation", "exact") == "exact"
-    return ca.nlpsol("slingback", "ipopt", tr.nlp, {**opts, **tr.derivative_functions(hessian=exact)})
+    fns, record = compiled.nlp_functions(tr, hessian=exact)
+    if fns is not None:
+        solver = ca.nlpsol("slingback", "ipopt", fns.pop("nlp"), {**opts, **compiled.NLPSOL_OPTIONS, **fns})
+    else:
+        solver = ca.nlpsol("slingback", "ipopt", tr.nlp, {**opts, **tr.derivative_functions(hessian=exact)})
+    solver.slingback_evaluation = record  # read by _solve_nlp into the attempt's record
+    return solver
 
 
 class NLPCache:
@@ -490,7 +496,7 @@ def _solve_nlp(tr: Transcription, x0, lam=None, extra=None):
     wall = time.perf_counter() - t0
     st = solver.stats()
     timing = {k[7:]: round(v, 4) for k, v in st.items() if k.startswith("t_wall_nlp_")}
-    return sol, {"timing_s": timing, "build_s": round(t_build, 4), "status": st["return_status"], "success": bool(st["success"]), "iterations": int(st["iter_count"]),
+    return sol, {"timing_s": timing, "build_s": round(t_build, 4), "evaluation": getattr(solver, "slingback_evaluation", None), "status": st["return_status"], "success": bool(st["success"]), "iterations": int(st["iter_count"]),
                  "wall_s": wall, "objective": float(sol["f"])}
 
 
