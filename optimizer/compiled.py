@@ -159,15 +159,15 @@ def nlp_functions(tr, hessian: bool = True, how: str | None = None):
 
     Returns ``(functions, record)``: ``functions`` is ``{"nlp": Function, "grad_f": ..., "jac_g":
     ..., "hess_lag": ...}`` (external, compiled) or None; ``record`` says what happened
-    (``evaluation``: ``"compiled"`` or ``"interpreted"``, the library's key, compile seconds, the
+    (``mode``: ``"compiled"`` or ``"interpreted"``, the library's key, compile seconds, the
     reason for the fallback).
     """
     how = how or mode()
     if how == "off":
-        return None, {"evaluation": "interpreted", "reason": "SLINGBACK_COMPILE=off"}
+        return None, {"mode": "interpreted", "reason": "SLINGBACK_COMPILE=off"}
     cc = compiler()
     if cc is None:
-        return None, {"evaluation": "interpreted", "reason": "no C compiler found (gcc, cc, $SLINGBACK_CC)"}
+        return None, {"mode": "interpreted", "reason": "no C compiler found (gcc, cc, $SLINGBACK_CC)"}
     fns = _functions(tr, hessian)
     names = [f.name() for f in fns]
     key = _key(cc, fns[0], hessian)
@@ -175,7 +175,9 @@ def nlp_functions(tr, hessian: bool = True, how: str | None = None):
     rec = {"key": key}
     if not target.exists():
         if target.with_suffix(".failed").exists():
-            return None, {**rec, "evaluation": "interpreted", "reason": "an earlier compile of this NLP failed"}
+            return None, {**rec, "mode": "interpreted", "reason": "an earlier compile of this NLP failed"}
+        if how == "auto" and (target.parent / "compiling.lock").exists():
+            return None, {**rec, "mode": "interpreted", "reason": "another compile is running"}
         cg = ca.CodeGenerator(f"slingback_{key}.c", {"with_header": False})
         for f in fns:
             cg.add(f)
@@ -184,19 +186,19 @@ def nlp_functions(tr, hessian: bool = True, how: str | None = None):
         rec["codegen_s"] = round(time.perf_counter() - t, 3)
         if how == "auto":
             started = _start_background(cc, source, target)
-            return None, {**rec, "evaluation": "interpreted",
+            return None, {**rec, "mode": "interpreted",
                           "reason": "compiling in the background" if started else "another compile is running"}
         t = time.perf_counter()
         try:
             _compile(cc, source, target)
         except (OSError, RuntimeError) as exc:
-            return None, {**rec, "evaluation": "interpreted", "reason": f"compile failed: {exc}"}
+            return None, {**rec, "mode": "interpreted", "reason": f"compile failed: {exc}"}
         rec["compile_s"] = round(time.perf_counter() - t, 2)
     try:
         ext = _load(target, names)
     except RuntimeError as exc:  # a library that does not load is set aside, never retried as is
-        return None, {**rec, "evaluation": "interpreted", "reason": f"library did not load: {exc}"}
+        return None, {**rec, "mode": "interpreted", "reason": f"library did not load: {exc}"}
     out = {"nlp": ext["nlp"], "grad_f": ext["nlp_grad_f"], "jac_g": ext["nlp_jac_g"]}
     if hessian:
         out["hess_lag"] = ext["nlp_hess_l"]
-    return out, {**rec, "evaluation": "compiled"}
+    return out, {**rec, "mode": "compiled"}

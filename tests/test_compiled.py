@@ -56,7 +56,7 @@ def cache(tmp_path, monkeypatch):
 @pytest.mark.skipif(compiled.compiler() is None, reason="no C compiler on this machine")
 def test_compiled_library_solves_hs71_to_the_published_optimum(cache):
     fns, rec = compiled.nlp_functions(HS71(), hessian=True, how="wait")
-    assert rec["evaluation"] == "compiled", rec
+    assert rec["mode"] == "compiled", rec
     f, x = _solve(fns)
     assert f == pytest.approx(HS71_F, abs=1e-6)  # the book gives 8 figures
     assert x == pytest.approx(HS71_X, abs=1e-6)
@@ -64,20 +64,20 @@ def test_compiled_library_solves_hs71_to_the_published_optimum(cache):
     assert len(libs) == 1 and not list(cache.rglob("*.tmp*")) and not list(cache.rglob("*.c"))
     # a second build of the same NLP loads the library: no compile time in its record
     again, rec2 = compiled.nlp_functions(HS71(), hessian=True, how="wait")
-    assert rec2["evaluation"] == "compiled" and "compile_s" not in rec2 and rec2["key"] == rec["key"]
+    assert rec2["mode"] == "compiled" and "compile_s" not in rec2 and rec2["key"] == rec["key"]
 
 
 def test_no_compiler_falls_back_to_interpreted(cache, monkeypatch):
     monkeypatch.setenv("PATH", str(cache))  # neither gcc nor cc
     fns, rec = compiled.nlp_functions(HS71(), hessian=True, how="wait")
-    assert fns is None and rec["evaluation"] == "interpreted" and "no C compiler" in rec["reason"]
+    assert fns is None and rec["mode"] == "interpreted" and "no C compiler" in rec["reason"]
 
 
 @pytest.mark.skipif(compiled.compiler() is None or not os.path.exists("/bin/false"), reason="needs /bin/false")
 def test_failed_compile_falls_back_and_leaves_no_library(cache, monkeypatch):
     monkeypatch.setenv("SLINGBACK_CC", "/bin/false")  # a "compiler" that always fails
     fns, rec = compiled.nlp_functions(HS71(), hessian=True, how="wait")
-    assert fns is None and rec["evaluation"] == "interpreted" and "compile failed" in rec["reason"]
+    assert fns is None and rec["mode"] == "interpreted" and "compile failed" in rec["reason"]
     assert not list(cache.rglob("*.so"))
     again, rec2 = compiled.nlp_functions(HS71(), hessian=True, how="wait")
     assert again is None and "failed" in rec2["reason"]  # not retried for the same key
@@ -86,7 +86,7 @@ def test_failed_compile_falls_back_and_leaves_no_library(cache, monkeypatch):
 def test_off_means_interpreted(cache, monkeypatch):
     monkeypatch.setenv("SLINGBACK_COMPILE", "off")
     fns, rec = compiled.nlp_functions(HS71())
-    assert fns is None and rec["evaluation"] == "interpreted"
+    assert fns is None and rec["mode"] == "interpreted"
     monkeypatch.setenv("SLINGBACK_COMPILE", "sometimes")
     with pytest.raises(ValueError, match="SLINGBACK_COMPILE"):
         compiled.mode()
