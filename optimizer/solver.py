@@ -432,7 +432,11 @@ def structure_key(tr: Transcription) -> tuple:
 def build_solver(tr: Transcription, opts: dict):
     """IPOPT on ``tr``'s NLP with the transcription's segment-wise exact derivatives (the Hessian
     only when IPOPT is to use it).  Measured on the ``bench_abort.py`` case: the same iterates as
-    CasADi's own derivatives of the whole graph, constraint Jacobian ~2x cheaper to evaluate."""
+    CasADi's own derivatives of the whole graph, constraint Jacobian ~2x cheaper to evaluate.
+
+    The functions are compiled C when :mod:`optimizer.compiled` has (or, with
+    ``SLINGBACK_COMPILE=wait``, builds) the library of this NLP, interpreted otherwise; the solver
+    carries the record of which (``slingback_evaluation``), copied into each run's record."""
     exact = opts.get("ipopt.hessian_approximation", "exact") == "exact"
     fns, record = compiled.nlp_functions(tr, hessian=exact)
     if fns is not None:
