@@ -10,7 +10,7 @@ the library is not built yet.
 Where: ``$SLINGBACK_CACHE_DIR`` if set, else ``$XDG_CACHE_HOME/slingback`` or ``~/.cache/slingback``;
 never inside the package.  Which library: the SHA-256 of everything the generated code depends on
 (CasADi's version, the compiler and its flags, the source of the transcription and of this module,
-and the serialised objective-and-constraint function, which holds the model's numbers, the mesh and
+and the serialised objective and constraint functions, which hold the model's numbers, the mesh and
 the layout).  A library is compiled under a temporary name and renamed when complete, so no process
 ever loads a half-written file; a failed compile leaves a ``.failed`` note with the compiler's
 message and is not retried for that key.
@@ -79,23 +79,27 @@ def compiler() -> str | None:
 def _functions(tr, hessian: bool) -> list:
     """The NLP's functions with the names and signatures nlpsol expects of user-given ones."""
     x, p = tr.nlp["x"], ca.MX.sym("p", 0, 1)
-    nlp = ca.Function("nlp", [x, p], [tr.nlp["f"], tr.nlp["g"]], ["x", "p"], ["f", "g"])
+    # objective and constraints apart: IPOPT asks for them separately, and the objective alone is
+    # a few operations while the constraints integrate every segment
+    fx = ca.Function("nlp_fx", [x, p], [tr.nlp["f"]], ["x", "p"], ["f"])
+    gx = ca.Function("nlp_gx", [x, p], [tr.nlp["g"]], ["x", "p"], ["g"])
     grad = ca.Function("nlp_grad_f", [x, p], [tr.nlp["f"], ca.gradient(tr.nlp["f"], x)],
                        ["x", "p"], ["f", "grad_f_x"])
     d = tr.derivative_functions(hessian=hessian)
-    # nlpsol differentiates "nlp" once when it is set up (the gradient of the Lagrangian, for the
-    # multipliers it reports): the library carries the reverse derivative under the name CasADi's
-    # external functions look up ("adj1_nlp")
-    return [nlp, nlp.reverse(1), grad, d["jac_g"]] + ([d["hess_lag"]] if hessian else [])
+    # nlpsol differentiates the NLP once when it is set up (the gradient of the Lagrangian, for the
+    # multipliers it reports): the library carries the reverse derivatives under the names CasADi's
+    # external functions look up ("adj1_<name>")
+    return [fx, gx, fx.reverse(1), gx.reverse(1), grad, d["jac_g"]] + ([d["hess_lag"]] if hessian else [])
 
 
-def _key(cc: str, nlp: ca.Function, hessian: bool) -> str:
+def _key(cc: str, defining: list, hessian: bool) -> str:
     h = hashlib.sha256()
     for part in (ca.__version__, sys.platform, cc, " ".join(CFLAGS), str(hessian)):
         h.update(part.encode() + b"\0")
     for path in _SOURCES:
         h.update(path.read_bytes())
-    h.update(nlp.serialize().encode())
+    for fn in defining:  # the objective and the constraints: the rest is derived from them
+        h.update(fn.serialize().encode())
     return h.hexdigest()[:32]
 
 
@@ -170,7 +174,7 @@ def nlp_functions(tr, hessian: bool = True, how: str | None = None):
         return None, {"mode": "interpreted", "reason": "no C compiler found (gcc, cc, $SLINGBACK_CC)"}
     fns = _functions(tr, hessian)
     names = [f.name() for f in fns]
-    key = _key(cc, fns[0], hessian)
+    key = _key(cc, fns[:2], hessian)
     target = cache_dir() / f"{key}.so"
     rec = {"key": key}
     if not target.exists():
@@ -198,7 +202,9 @@ def nlp_functions(tr, hessian: bool = True, how: str | None = None):
         ext = _load(target, names)
     except RuntimeError as exc:  # a library that does not load is set aside, never retried as is
         return None, {**rec, "mode": "interpreted", "reason": f"library did not load: {exc}"}
-    out = {"nlp": ext["nlp"], "grad_f": ext["nlp_grad_f"], "jac_g": ext["nlp_jac_g"]}
+    x, p = ca.MX.sym("x", fns[0].size1_in(0)), ca.MX.sym("p", 0, 1)
+    nlp = ca.Function("nlp", [x, p], [ext["nlp_fx"](x, p), ext["nlp_gx"](x, p)], ["x", "p"], ["f", "g"])
+    out = {"nlp": nlp, "grad_f": ext["nlp_grad_f"], "jac_g": ext["nlp_jac_g"]}
     if hessian:
         out["hess_lag"] = ext["nlp_hess_l"]
     return out, {**rec, "mode": "compiled"}

@@ -90,3 +90,17 @@ def test_off_means_interpreted(cache, monkeypatch):
     monkeypatch.setenv("SLINGBACK_COMPILE", "sometimes")
     with pytest.raises(ValueError, match="SLINGBACK_COMPILE"):
         compiled.mode()
+
+
+def test_library_key_changes_with_the_objective_and_the_constraints():
+    # a library serves only the NLP it was generated from: same constraints with another objective
+    # (or the reverse) must not find it
+    cc = compiled.compiler() or "cc"
+    base = HS71()
+    other_f, other_g = HS71(), HS71()
+    x = other_f.nlp["x"]
+    other_f.nlp["f"] = other_f.nlp["f"] + x[1]
+    other_g.nlp["g"] = ca.vertcat(other_g.nlp["g"][0], ca.sumsqr(x) + x[0])
+    keys = {compiled._key(cc, compiled._functions(t, True)[:2], True) for t in (base, other_f, other_g)}
+    assert len(keys) == 3
+    assert compiled._key(cc, compiled._functions(HS71(), True)[:2], True) in keys  # and it is stable
