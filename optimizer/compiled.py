@@ -76,13 +76,21 @@ def compiler() -> str | None:
     return None
 
 
-def _functions(tr, hessian: bool) -> list:
-    """The NLP's functions with the names and signatures nlpsol expects of user-given ones."""
+def _defining(tr) -> list:
+    """The objective and the constraints as functions of (x, p): what a library is keyed on."""
     x, p = tr.nlp["x"], ca.MX.sym("p", 0, 1)
     # objective and constraints apart: IPOPT asks for them separately, and the objective alone is
     # a few operations while the constraints integrate every segment
     fx = ca.Function("nlp_fx", [x, p], [tr.nlp["f"]], ["x", "p"], ["f"])
     gx = ca.Function("nlp_gx", [x, p], [tr.nlp["g"]], ["x", "p"], ["g"])
+    return [fx, gx]
+
+
+def _functions(tr, hessian: bool, defining: list) -> list:
+    """Everything the library holds, with the names and signatures nlpsol expects of user-given
+    functions (only built when a library is to be generated: loading one needs none of this)."""
+    fx, gx = defining
+    x, p = tr.nlp["x"], ca.MX.sym("p", 0, 1)
     grad = ca.Function("nlp_grad_f", [x, p], [tr.nlp["f"], ca.gradient(tr.nlp["f"], x)],
                        ["x", "p"], ["f", "grad_f_x"])
     d = tr.derivative_functions(hessian=hessian)
@@ -172,9 +180,9 @@ def nlp_functions(tr, hessian: bool = True, how: str | None = None):
     cc = compiler()
     if cc is None:
         return None, {"mode": "interpreted", "reason": "no C compiler found (gcc, cc, $SLINGBACK_CC)"}
-    fns = _functions(tr, hessian)
-    names = [f.name() for f in fns]
-    key = _key(cc, fns[:2], hessian)
+    defining = _defining(tr)
+    names = ["nlp_fx", "nlp_gx", "nlp_grad_f", "nlp_jac_g"] + (["nlp_hess_l"] if hessian else [])
+    key = _key(cc, defining, hessian)
     target = cache_dir() / f"{key}.so"
     rec = {"key": key}
     if not target.exists():
@@ -183,7 +191,7 @@ def nlp_functions(tr, hessian: bool = True, how: str | None = None):
         if how == "auto" and (target.parent / "compiling.lock").exists():
             return None, {**rec, "mode": "interpreted", "reason": "another compile is running"}
         cg = ca.CodeGenerator(f"slingback_{key}.c", {"with_header": False})
-        for f in fns:
+        for f in _functions(tr, hessian, defining):
             cg.add(f)
         t = time.perf_counter()
         source = cg.dump()
@@ -202,7 +210,7 @@ def nlp_functions(tr, hessian: bool = True, how: str | None = None):
         ext = _load(target, names)
     except RuntimeError as exc:  # a library that does not load is set aside, never retried as is
         return None, {**rec, "mode": "interpreted", "reason": f"library did not load: {exc}"}
-    x, p = ca.MX.sym("x", fns[0].size1_in(0)), ca.MX.sym("p", 0, 1)
+    x, p = ca.MX.sym("x", defining[0].size1_in(0)), ca.MX.sym("p", 0, 1)
     nlp = ca.Function("nlp", [x, p], [ext["nlp_fx"](x, p), ext["nlp_gx"](x, p)], ["x", "p"], ["f", "g"])
     out = {"nlp": nlp, "grad_f": ext["nlp_grad_f"], "jac_g": ext["nlp_jac_g"]}
     if hessian:

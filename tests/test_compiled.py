@@ -102,6 +102,6 @@ def test_library_key_changes_with_the_objective_and_the_constraints():
     other_f.nlp["f"] = other_f.nlp["f"] + x[1]
     xg = other_g.nlp["x"]
     other_g.nlp["g"] = ca.vertcat(other_g.nlp["g"][0], ca.sumsqr(xg) + xg[0])
-    keys = {compiled._key(cc, compiled._functions(t, True)[:2], True) for t in (base, other_f, other_g)}
+    keys = {compiled._key(cc, compiled._defining(t), True) for t in (base, other_f, other_g)}
     assert len(keys) == 3
-    assert compiled._key(cc, compiled._functions(HS71(), True)[:2], True) in keys  # and it is stable
+    assert compiled._key(cc, compiled._defining(HS71()), True) in keys  # and it is stable
