@@ -220,6 +220,9 @@ def _clenshaw_casadi(c: np.ndarray, x):
     return ca.vertcat(*out)
 
 
+_DOT = np.dot
+
+
 class _Series:
     """One body's Chebyshev series on the window: position and derivative coefficients."""
 
@@ -275,6 +278,13 @@ class ChebyshevEphemeris:
         self._slack = 1e-12 * max(abs(t_start), abs(t_end), t_end - t_start)
         self._moon = _Series(moon_coeffs, self._half)
         self._sun = None if sun_coeffs is None else _Series(sun_coeffs, self._half)
+        # Moon and Sun position coefficients side by side, (deg+1, 6), the shorter series padded
+        # with zeros: both bodies from one basis and one product (the propagator's fast path)
+        deg = max(self._moon.degree, self._sun.degree if self._sun is not None else 0)
+        self._both = np.zeros((deg + 1, 6))
+        self._both[: self._moon.degree + 1, :3] = self._moon.coeffs
+        if self._sun is not None:
+            self._both[: self._sun.degree + 1, 3:] = self._sun.coeffs
         self.max_error_km = dict(max_error_km or {})
         self.source = source
         self.tol_km = tol_km
@@ -376,6 +386,25 @@ class ChebyshevEphemeris:
                 return _clenshaw_scalar(series._drows, series._dc0, x)
             return _clenshaw_scalar(series._rows, series._c0, x)
         return _clenshaw_array(series.dcoeffs if derivative else series.coeffs, x)
+
+    def moon_and_sun(self, t: float) -> list:
+        """Moon and Sun positions at one epoch as six floats (km; the Sun's are 0 if not fitted).
+
+        The propagator's right-hand side calls this once per evaluation: the Chebyshev basis
+        ``T_k(x)`` by its three-term recurrence on floats, then one product with both bodies'
+        coefficients (the series :meth:`moon` and :meth:`sun` give, summed on the basis instead of
+        by Clenshaw's recurrence: equal to rounding).
+        """
+        t = float(t)
+        if not (self.t_start - self._slack <= t <= self.t_end + self._slack):
+            raise ValueError(self._outside(t))
+        x = (t - self._mid) * self._inv_half
+        x2, a, b = x + x, 1.0, x
+        basis = [1.0, x]
+        for _ in range(self._both.shape[0] - 2):
+            a, b = b, x2 * b - a
+            basis.append(b)
+        return _DOT(basis[: self._both.shape[0]], self._both).tolist()
 
     def moon(self, t):
         """Geocentric Moon position, km: shape (3,) for scalar ``t``, (3, N) for N epochs."""

@@ -25,7 +25,7 @@ from dataclasses import replace
 import casadi as ca
 import numpy as np
 
-from . import __version__
+from . import __version__, compiled
 from .models import build_model
 from .plan import Burn, Plan
 from .problem import Problem
@@ -433,9 +433,19 @@ def structure_key(tr: Transcription) -> tuple:
 def build_solver(tr: Transcription, opts: dict):
     """IPOPT on ``tr``'s NLP with the transcription's segment-wise exact derivatives (the Hessian
     only when IPOPT is to use it).  Measured on the ``bench_abort.py`` case: the same iterates as
-    CasADi's own derivatives of the whole graph, constraint Jacobian ~2x cheaper to evaluate."""
+    CasADi's own derivatives of the whole graph, constraint Jacobian ~2x cheaper to evaluate.
+
+    The functions are compiled C when :mod:`optimizer.compiled` has (or, with
+    ``SLINGBACK_COMPILE=wait``, builds) the library of this NLP, interpreted otherwise; the solver
+    carries the record of which (``slingback_evaluation``), copied into each run's record."""
     exact = opts.get("ipopt.hessian_approximation", "exact") == "exact"
-    return ca.nlpsol("slingback", "ipopt", tr.nlp, {**opts, **tr.derivative_functions(hessian=exact)})
+    fns, record = compiled.nlp_functions(tr, hessian=exact)
+    if fns is not None:
+        solver = ca.nlpsol("slingback", "ipopt", fns.pop("nlp"), {**opts, **compiled.NLPSOL_OPTIONS, **fns})
+    else:
+        solver = ca.nlpsol("slingback", "ipopt", tr.nlp, {**opts, **tr.derivative_functions(hessian=exact)})
+    solver.slingback_evaluation = record  # read by _solve_nlp into the attempt's record
+    return solver
 
 
 class NLPCache:
@@ -491,7 +501,7 @@ def _solve_nlp(tr: Transcription, x0, lam=None, extra=None):
     wall = time.perf_counter() - t0
     st = solver.stats()
     timing = {k[7:]: round(v, 4) for k, v in st.items() if k.startswith("t_wall_nlp_")}
-    return sol, {"timing_s": timing, "build_s": round(t_build, 4), "status": st["return_status"], "success": bool(st["success"]), "iterations": int(st["iter_count"]),
+    return sol, {"timing_s": timing, "build_s": round(t_build, 4), "evaluation": getattr(solver, "slingback_evaluation", None), "status": st["return_status"], "success": bool(st["success"]), "iterations": int(st["iter_count"]),
                  "wall_s": wall, "objective": float(sol["f"])}
 
 

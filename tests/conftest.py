@@ -8,8 +8,14 @@ place.
 from __future__ import annotations
 
 import json
+import os
 
 import pytest
+
+# The suite solves many NLP structures once each: compiling each (minutes of a core on this size of
+# machine) would not pay, and detached compilers would outlive the run.  tests/test_compiled.py
+# checks the compiled route itself; set SLINGBACK_COMPILE=auto to run the suite with it.
+os.environ.setdefault("SLINGBACK_COMPILE", "off")
 
 
 @pytest.fixture(autouse=True, scope="session")

@@ -128,6 +128,18 @@ def test_fit_30_days_numpy(de421, fit30):
     fit30.moon(T0), fit30.moon(T0 + 30 * DAY)
 
 
+def test_moon_and_sun_one_basis_matches_de421(de421, fit30):
+    # The propagator's fast path (both bodies from one Chebyshev basis, summed by a product instead
+    # of Clenshaw's recurrence) against DE421 read by jplephem: the same 1 cm as the series above.
+    ts = T0 + RNG.uniform(0.0, 30 * DAY, 200)
+    for t in ts:
+        both = np.array(fit30.moon_and_sun(t))
+        assert np.linalg.norm(both[:3] - de421.moon(t)) < 0.01
+        assert np.linalg.norm(both[3:] - de421.sun(t)) < 0.01
+    with pytest.raises(ValueError, match="outside the Chebyshev fit window"):
+        fit30.moon_and_sun(T0 - DAY)
+
+
 @pytest.mark.parametrize("sym", [ca.SX, ca.MX])
 def test_fit_30_days_casadi(de421, fit30, sym):
     # Source: DE421 via jplephem (positions and compute_and_differentiate velocities).
