@@ -166,30 +166,37 @@ def cmd_demo(args) -> int:
 
 
 def cmd_check(args) -> int:
-    from .export import plan_path, read_plan, recheck
+    from .export import plan_path, read_plan_data, recheck
+    from .export.check import claim_differences, plan_problem
 
     source = str(plan_path(args.plan))
-    plan = read_plan(source)
+    plan, data = read_plan_data(source)
+    problem = plan_problem(plan, source)
     progress = _progress(args)
     if progress:
         progress(f"re-propagating {plan.name} ({len(plan.burns)} burn(s)) with the independent propagator")
     try:
-        ver = recheck(plan, source=source)
+        ver = recheck(plan, problem, source=source)
     except RuntimeError as exc:
         _err(f"the re-propagation failed: {exc}")
         return EXIT_UNVERIFIED
+    claims = claim_differences(data, plan, problem, ver)
+    passed = ver.passed and not claims
     if args.json:
-        print(json.dumps({"plan": source, "passed": ver.passed, "residuals": ver.residuals,
-                          "tolerances": ver.tolerances, "violations": ver.violations}, indent=1))
+        print(json.dumps({"plan": source, "passed": passed, "residuals": ver.residuals,
+                          "tolerances": ver.tolerances, "violations": ver.violations,
+                          "claims_differing": claims}, indent=1))
     else:
-        print(f"{plan.name}: re-verification {'PASSED' if ver.passed else 'FAILED'}")
+        print(f"{plan.name}: re-verification {'PASSED' if passed else 'FAILED'}")
         for key, value in ver.residuals.items():
             limit = ver.tolerances.get(key)
             print(f"  {key}: {value:.4g}" + ("" if limit is None else f" (tolerance {limit:g})"))
         for v in ver.violations:
             print(f"  violation: {v}")
-    if not ver.passed:
-        _err("the plan FAILED re-verification: " + "; ".join(ver.violations))
+        for c in claims:
+            print(f"  claim differs: {c}")
+    if not passed:
+        _err("the plan FAILED re-verification: " + "; ".join(ver.violations + claims))
         return EXIT_UNVERIFIED
     return EXIT_OK
 
