@@ -1,7 +1,8 @@
 """The ``slingback`` command: parses arguments, calls the library, prints.  No logic lives here.
 
 Exit codes: 0 solved and verified (or the command succeeded), 2 bad input (problem file, plan
-file, arguments, existing output folder), 3 no verified solution (the reason is printed).
+file, arguments, an output folder that exists or cannot be written), 3 no verified solution (the
+reason is printed), 130 interrupted (Ctrl-C; nothing is written).
 """
 
 from __future__ import annotations
@@ -14,7 +15,7 @@ from pathlib import Path
 from . import __version__
 from .constants import CAUTION
 
-EXIT_OK, EXIT_INPUT, EXIT_UNVERIFIED = 0, 2, 3
+EXIT_OK, EXIT_INPUT, EXIT_UNVERIFIED, EXIT_INTERRUPTED = 0, 2, 3, 130
 PROBLEMS = Path(__file__).resolve().parent.parent / "problems"
 DEMO = "demo-abort"
 
@@ -22,9 +23,10 @@ EPILOG = f"""\
 exit codes:
   0  solved and verified (check: the plan passed; other commands: done)
   2  bad input: problem file, plan file or arguments (the message names the file and key),
-     or an output folder that exists without --force
-  3  no verified solution (solve, demo) or the plan failed re-verification (check); the reason
-     is printed
+     or an output folder that exists without --force or cannot be written (checked before solving)
+  3  no verified solution (solve, demo) or the plan failed re-verification (check: a constraint
+     or any figure the plan claims differs from the re-derived one); the reason is printed
+  130  interrupted by Ctrl-C; nothing is written (a run folder is either whole or absent)
 
 Epochs are TDB; units are in the key names of problem files (see docs/problem-format.md).
 {CAUTION}
@@ -100,12 +102,23 @@ def main(argv=None) -> int:
         args = _parser().parse_args(argv)
     except SystemExit as exc:  # argparse: --help (0) or a usage error (2)
         return int(exc.code or 0)
-    from .export import PlanFileError
+    from .interrupt import honour_ctrl_c
+
+    try:
+        with honour_ctrl_c():
+            return _run(args)
+    except KeyboardInterrupt:
+        _err(f"interrupted (Ctrl-C); {args.command} stopped, nothing written")
+        return EXIT_INTERRUPTED
+
+
+def _run(args) -> int:
+    from .export import OutputPathError, PlanFileError
     from .problem_file import ProblemError
 
     try:
         return COMMANDS[args.command](args)
-    except (ProblemError, PlanFileError, FileExistsError) as exc:
+    except (ProblemError, PlanFileError, FileExistsError, OutputPathError) as exc:
         _err(f"error: {exc}")
         return EXIT_INPUT
 
@@ -121,9 +134,9 @@ def _progress(args):
 # ------------------------------------------------------------------------------------------------
 def _solve_into(problem, out: Path, force: bool, args) -> int:
     from .export import run_summary, write_run
+    from .export.run import refuse_existing, save_rescued_plan
 
-    if out.exists() and not force:
-        raise FileExistsError(f"{out} already exists; use --force to replace it")
+    refuse_existing(out, force)  # exists, is a file, lies under a file or cannot be written: before solving
     from .solver import SolveError, solve
 
     progress = _progress(args)
@@ -134,7 +147,13 @@ def _solve_into(problem, out: Path, force: bool, args) -> int:
     except SolveError as exc:
         _err(f"no solution: the problem cannot be set up ({exc}); nothing written")
         return EXIT_UNVERIFIED
-    write_run(plan, problem, out, force=force)
+    try:
+        write_run(plan, problem, out, force=force)
+    except OSError as exc:
+        kept = save_rescued_plan(plan, problem, out)
+        _err(f"error: the run folder {out} could not be written ({exc.strerror or exc}); nothing was left there. "
+             + (f"The plan ({plan.status}) is kept in {kept}" if kept else "The plan could not be kept anywhere"))
+        return EXIT_INPUT
     summary = run_summary(plan, out)
     if args.json:
         print(json.dumps(summary, indent=1))
@@ -211,11 +230,13 @@ def cmd_models(args) -> int:
 
 def cmd_plot(args) -> int:
     from .export import PlanFileError, plan_path, plan_problem, read_plan, write_plot_files
+    from .export.run import check_writable
 
     source = plan_path(args.plan)
     plan = read_plan(source)
     problem = plan_problem(plan, str(source))
     out = Path(args.out) if args.out else source.resolve().parent
+    check_writable(out)
     out.mkdir(parents=True, exist_ok=True)
     try:
         names = write_plot_files(plan, problem, out)
