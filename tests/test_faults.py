@@ -164,3 +164,19 @@ def test_ctrl_c_during_solve_exits_130_with_one_line_and_writes_nothing(tmp_path
     assert lines[-1] == "slingback: interrupted (Ctrl-C); solve stopped, nothing written"
     assert "Traceback" not in err
     assert list(tmp_path.iterdir()) == []
+
+
+def test_unverified_run_marks_problem_toml_not_verified(case, tmp_path):
+    """Docs drift of the issue: every file of an unverified run says so (plan.json in its status)."""
+    import tomllib
+    from dataclasses import replace
+
+    from optimizer.export import write_run
+
+    problem, model, plan = case
+    bad = write_run(replace(plan, status="unverified", reason="stub"), problem, tmp_path / "bad", model=model)
+    good = write_run(plan, problem, tmp_path / "good", model=model)
+    assert "# NOT VERIFIED" in (bad / "problem.toml").read_text()
+    assert "NOT VERIFIED" not in (good / "problem.toml").read_text()
+    assert json.loads((bad / "plan.json").read_text())["status"] == "unverified"
+    assert tomllib.loads((bad / "problem.toml").read_text())["case"]["name"] == problem.name

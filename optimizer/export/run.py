@@ -211,8 +211,9 @@ def _write_contents(plan, problem, folder: Path, model, created):
     name = _model_name(plan, problem)
     notes, files, figures = [], ["plan.json", "problem.toml", "burns.csv"], []
     (folder / "plan.json").write_text(json.dumps(plan_json(plan, problem), indent=1) + "\n")
+    mark = "" if plan.verified else f"# NOT VERIFIED: this run's plan is {plan.status}; do not use it as a result.\n"
     (folder / "problem.toml").write_text(
-        f"# Problem of the slingback {__version__} run {plan.name!r} (status {plan.status}).\n"
+        f"# Problem of the slingback {__version__} run {plan.name!r} (status {plan.status}).\n{mark}"
         f"# {CAUTION}\n\n" + dumps_toml(problem_to_dict(problem)))
     write_csv(burns_frame(plan, problem), folder / "burns.csv")
     if len(plan.trajectory_t):
