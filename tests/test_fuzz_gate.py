@@ -12,15 +12,13 @@ import copy
 import json
 import math
 
+import tomli_w
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from export_fixture import make_case
 from optimizer.export import plan_json
-from test_problem_file import DEMOS, raw, run
-from test_problem_file import leaves, at
-
-import tomli_w
+from test_problem_file import DEMOS, at, leaves, raw, run
 
 HOSTILE = st.one_of(st.just(10 ** 400), st.just(-10 ** 400), st.just(1e300), st.just(-1e300), st.just(math.nan),
                     st.just(math.inf), st.just(""), st.just("\x07\x1b\x7f"), st.just("x" * 100_000),

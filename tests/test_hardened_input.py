@@ -10,12 +10,11 @@ from __future__ import annotations
 
 import re
 import tomllib
-from pathlib import Path
 
 import pytest
 import tomli_w
 
-from optimizer.problem_file import dumps_toml, problem_from_dict, problem_to_dict, load_problem
+from optimizer.problem_file import dumps_toml, load_problem, problem_from_dict, problem_to_dict
 from test_problem_file import PROBLEMS, refused
 
 BASE = (PROBLEMS / "demo-abort.toml").read_text()
