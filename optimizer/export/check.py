@@ -187,6 +187,9 @@ def claim_differences(data: dict, plan, problem, ver, model=None) -> list[str]:
                 out.append(f"burns[{i}].dv_rtn_mps: claimed {[round(x, 6) for x in claimed]}, re-derived "
                            f"{[round(float(x), 6) for x in rtn]} m/s")
         _compare_epoch(out, f"burns[{i}].epoch_tdb", raw.get("epoch_tdb"), b.epoch)
+        for key in ("ignition_epoch_tdb", "cutoff_epoch_tdb"):  # finite-burn epochs: text against seconds
+            if key in raw and _finite(raw.get(key + "_s")):
+                _compare_epoch(out, f"burns[{i}].{key}", raw[key], float(raw[key + "_s"]))
     start = data.get("start", {})
     _compare_epoch(out, "start.epoch_tdb", start.get("epoch_tdb") if isinstance(start, dict) else None,
                    plan.start_epoch)
@@ -225,8 +228,10 @@ def _compare_epoch(out, key, text, seconds):
     if text is None:
         return
     try:
+        if not isinstance(text, str):
+            raise TypeError
         t = parse_epoch(text)
-    except (ValueError, TypeError):
+    except (ValueError, TypeError, OverflowError):
         out.append(f"{key}: expected a TDB epoch, got {_short(text)}")
         return
     if not abs(t - seconds) <= 1e-3:
