@@ -128,8 +128,8 @@ def recheck(plan, problem=None, model=None, source: str = "plan.json"):
     try:
         model = model or plan_model(plan, problem)
         return verify(model, problem, plan.start_epoch, plan.start_state, plan.burns, plan.events, t_end)
-    except ValueError as exc:
-        raise PlanFileError(f"{source}: cannot re-propagate the plan ({exc})") from None
+    except (ValueError, TypeError) as exc:  # TypeError: a claimed figure of the wrong type
+        raise PlanFileError(f"{source}: cannot re-propagate or compare the plan ({exc})") from None
 
 
 def claim_differences(data: dict, plan, problem, ver, model=None) -> list[str]:
