@@ -1,7 +1,8 @@
 """The ``slingback`` command: parses arguments, calls the library, prints.  No logic lives here.
 
 Exit codes: 0 solved and verified (or the command succeeded), 2 bad input (problem file, plan
-file, arguments, existing output folder), 3 no verified solution (the reason is printed).
+file, arguments, an output folder that exists or cannot be written), 3 no verified solution (the
+reason is printed), 130 interrupted (Ctrl-C; nothing is written).
 """
 
 from __future__ import annotations
@@ -14,7 +15,7 @@ from pathlib import Path
 from . import __version__
 from .constants import CAUTION
 
-EXIT_OK, EXIT_INPUT, EXIT_UNVERIFIED = 0, 2, 3
+EXIT_OK, EXIT_INPUT, EXIT_UNVERIFIED, EXIT_INTERRUPTED = 0, 2, 3, 130
 PROBLEMS = Path(__file__).resolve().parent.parent / "problems"
 DEMO = "demo-abort"
 
@@ -22,9 +23,10 @@ EPILOG = f"""\
 exit codes:
   0  solved and verified (check: the plan passed; other commands: done)
   2  bad input: problem file, plan file or arguments (the message names the file and key),
-     or an output folder that exists without --force
-  3  no verified solution (solve, demo) or the plan failed re-verification (check); the reason
-     is printed
+     or an output folder that exists without --force or cannot be written (checked before solving)
+  3  no verified solution (solve, demo) or the plan failed re-verification (check: a constraint
+     or any figure the plan claims differs from the re-derived one); the reason is printed
+  130  interrupted by Ctrl-C; nothing is written (a run folder is either whole or absent)
 
 Epochs are TDB; units are in the key names of problem files (see docs/problem-format.md).
 {CAUTION}
@@ -100,12 +102,23 @@ def main(argv=None) -> int:
         args = _parser().parse_args(argv)
     except SystemExit as exc:  # argparse: --help (0) or a usage error (2)
         return int(exc.code or 0)
-    from .export import PlanFileError
+    from .interrupt import honour_ctrl_c
+
+    try:
+        with honour_ctrl_c():
+            return _run(args)
+    except KeyboardInterrupt:
+        _err(f"interrupted (Ctrl-C); {args.command} stopped, nothing written")
+        return EXIT_INTERRUPTED
+
+
+def _run(args) -> int:
+    from .export import OutputPathError, PlanFileError
     from .problem_file import ProblemError
 
     try:
         return COMMANDS[args.command](args)
-    except (ProblemError, PlanFileError, FileExistsError) as exc:
+    except (ProblemError, PlanFileError, FileExistsError, OutputPathError) as exc:
         _err(f"error: {exc}")
         return EXIT_INPUT
 
@@ -121,9 +134,9 @@ def _progress(args):
 # ------------------------------------------------------------------------------------------------
 def _solve_into(problem, out: Path, force: bool, args) -> int:
     from .export import run_summary, write_run
+    from .export.run import refuse_existing, save_rescued_plan
 
-    if out.exists() and not force:
-        raise FileExistsError(f"{out} already exists; use --force to replace it")
+    refuse_existing(out, force)  # exists, is a file, lies under a file or cannot be written: before solving
     from .solver import SolveError, solve
 
     progress = _progress(args)
@@ -134,7 +147,13 @@ def _solve_into(problem, out: Path, force: bool, args) -> int:
     except SolveError as exc:
         _err(f"no solution: the problem cannot be set up ({exc}); nothing written")
         return EXIT_UNVERIFIED
-    write_run(plan, problem, out, force=force)
+    try:
+        write_run(plan, problem, out, force=force)
+    except OSError as exc:
+        kept = save_rescued_plan(plan, problem, out)
+        _err(f"error: the run folder {out} could not be written ({exc.strerror or exc}); nothing was left there. "
+             + (f"The plan ({plan.status}) is kept in {kept}" if kept else "The plan could not be kept anywhere"))
+        return EXIT_INPUT
     summary = run_summary(plan, out)
     if args.json:
         print(json.dumps(summary, indent=1))
@@ -166,30 +185,37 @@ def cmd_demo(args) -> int:
 
 
 def cmd_check(args) -> int:
-    from .export import plan_path, read_plan, recheck
+    from .export import plan_path, read_plan_data, recheck
+    from .export.check import claim_differences, plan_problem
 
     source = str(plan_path(args.plan))
-    plan = read_plan(source)
+    plan, data = read_plan_data(source)
+    problem = plan_problem(plan, source)
     progress = _progress(args)
     if progress:
         progress(f"re-propagating {plan.name} ({len(plan.burns)} burn(s)) with the independent propagator")
     try:
-        ver = recheck(plan, source=source)
+        ver = recheck(plan, problem, source=source)
     except RuntimeError as exc:
         _err(f"the re-propagation failed: {exc}")
         return EXIT_UNVERIFIED
+    claims = claim_differences(data, plan, problem, ver)
+    passed = ver.passed and not claims
     if args.json:
-        print(json.dumps({"plan": source, "passed": ver.passed, "residuals": ver.residuals,
-                          "tolerances": ver.tolerances, "violations": ver.violations}, indent=1))
+        print(json.dumps({"plan": source, "passed": passed, "residuals": ver.residuals,
+                          "tolerances": ver.tolerances, "violations": ver.violations,
+                          "claims_differing": claims}, indent=1))
     else:
-        print(f"{plan.name}: re-verification {'PASSED' if ver.passed else 'FAILED'}")
+        print(f"{plan.name}: re-verification {'PASSED' if passed else 'FAILED'}")
         for key, value in ver.residuals.items():
             limit = ver.tolerances.get(key)
             print(f"  {key}: {value:.4g}" + ("" if limit is None else f" (tolerance {limit:g})"))
         for v in ver.violations:
             print(f"  violation: {v}")
-    if not ver.passed:
-        _err("the plan FAILED re-verification: " + "; ".join(ver.violations))
+        for c in claims:
+            print(f"  claim differs: {c}")
+    if not passed:
+        _err("the plan FAILED re-verification: " + "; ".join(ver.violations + claims))
         return EXIT_UNVERIFIED
     return EXIT_OK
 
@@ -204,11 +230,13 @@ def cmd_models(args) -> int:
 
 def cmd_plot(args) -> int:
     from .export import PlanFileError, plan_path, plan_problem, read_plan, write_plot_files
+    from .export.run import check_writable
 
     source = plan_path(args.plan)
     plan = read_plan(source)
     problem = plan_problem(plan, str(source))
     out = Path(args.out) if args.out else source.resolve().parent
+    check_writable(out)
     out.mkdir(parents=True, exist_ok=True)
     try:
         names = write_plot_files(plan, problem, out)

@@ -66,6 +66,13 @@ KEYS = {
 }
 #: Epochs the "ephemeris" model can serve (DE421's nominal span, 1900-2050).
 EPHEMERIS_SPAN = (parse_epoch("1900-01-01T00:00:00"), parse_epoch("2050-01-01T00:00:00"))
+#: Upper limits of the verification tolerances (``[tolerances]``): a looser tolerance would make
+#: "verified" meaningless.  Documented in docs/problem-format.md.
+TOLERANCE_LIMITS = {"entry_position_km": 100.0, "flight_path_deg": 0.5, "perilune_altitude_km": 100.0,
+                    "perigee_altitude_km": 100.0}
+#: Deepest nesting of tables and arrays a problem file may have (the schema needs 3).
+MAX_DEPTH = 8
+_CONTROL_RE = re.compile(r"[\x00-\x1f\x7f]")
 _NAME_RE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")
 _REQUIRED = object()
 
@@ -104,10 +111,15 @@ def load_problem(path) -> Problem:
         raise ProblemError(f"{source}: not a UTF-8 text file") from None
     try:
         data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        message = str(exc).replace("(at end of document)",
-                                   f"(at the end of the file, line {len(text.splitlines()) or 1})")
-        raise ProblemError(f"{source}: invalid TOML: {message}") from None
+    except ValueError as exc:  # tomllib: an integer past Python's digit limit
+        if isinstance(exc, tomllib.TOMLDecodeError):
+            message = str(exc).replace("(at end of document)",
+                                       f"(at the end of the file, line {len(text.splitlines()) or 1})")
+            raise ProblemError(f"{source}: invalid TOML: {message}") from None
+        raise ProblemError(f"{source}: invalid TOML: {exc}") from None
+    except RecursionError:
+        raise ProblemError(f"{source}: arrays or tables nested too deeply to read (a problem file needs "
+                           f"at most {MAX_DEPTH} levels)") from None
     problem = problem_from_dict(data, source=source)
     if "sweep" in data:  # checked at the door too, though only a trade study uses it
         from .trade import parse_sweep_spec
@@ -136,6 +148,7 @@ def problem_from_dict(d: dict, source: str = "<dict>") -> Problem:
     """
     if not isinstance(d, dict):
         raise ProblemError(f"{source}: expected a table of sections, got {_show(d)}")
+    _check_depth(d, source)
     d = {k: v for k, v in d.items() if k not in OTHER_LAYERS}
     top = _Table(source, "", "", d)
     case = _Table.sub(top, "case", required=True)
@@ -157,9 +170,8 @@ def problem_from_dict(d: dict, source: str = "<dict>") -> Problem:
     objective = _objective(_Table.sub(top, "objective"))
     tol = _Table.sub(top, "tolerances")
     defaults = Tolerances()
-    tolerances = Tolerances(**{k: tol.number(k, getattr(defaults, k), lo=0.0, lo_open=True)
-                               for k in ("entry_position_km", "flight_path_deg",
-                                         "perilune_altitude_km", "perigee_altitude_km")})
+    tolerances = Tolerances(**{k: tol.number(k, getattr(defaults, k), lo=0.0, lo_open=True, hi=hi)
+                               for k, hi in TOLERANCE_LIMITS.items()})
     tol.done()
     mesh_t = _Table.sub(top, "mesh")
     mesh = Mesh(segments=mesh_t.integer("segments", Mesh().segments, 1, 10000),
@@ -170,6 +182,12 @@ def problem_from_dict(d: dict, source: str = "<dict>") -> Problem:
     spacing_h = limits.number("min_burn_spacing_hours", 0.0, lo=0.0, hi=1000.0)
     min_alt = limits.number("min_altitude_km", Problem.__dataclass_fields__["min_altitude_km"].default,
                             lo=0.0, hi=1e5)
+    for i in range(1, len(burns)):
+        reach_h = (burns[i].window[1] - burns[i - 1].window[0]) / 3600.0
+        if spacing_h > reach_h:
+            raise limits.error("min_burn_spacing_hours", f"at most {reach_h:g} h (burn #{i} and burn #{i + 1} "
+                                                         "cannot be that far apart inside their windows)",
+                               spacing_h)
     limits.done()
     problem = Problem(name=name, start=start, burns=burns, lunar=lunar_pass, arrival=arrival,
                       objective=objective, model=model, min_burn_spacing_s=spacing_h * 3600.0,
@@ -192,15 +210,43 @@ def _check_ephemeris_span(problem: Problem, source: str, start_only: bool = Fals
     ``start_only``: the model reads DE421 at the start epoch alone (a circular Moon through it)."""
     lo, hi = EPHEMERIS_SPAN
     key = "[start].epoch" if isinstance(problem.start, StateStart) else "[start].epoch_window"
-    if problem.start_epoch - 4 * 86400.0 < lo or (start_only and problem.start_epoch + 4 * 86400.0 > hi):
+    if not lo <= problem.start_epoch - 4 * 86400.0 <= problem.start_epoch + 4 * 86400.0 <= hi:
         raise ProblemError(f"{source}: {key}: expected an epoch between {format_epoch(lo + 4 * 86400.0, 0)} and "
                            f"{format_epoch(hi - 4 * 86400.0, 0)} TDB (the model places the Moon from DE421, "
                            "which covers 1900-2050)")
     if start_only:
         return
     if problem.latest_epoch() + 86400.0 > hi:
-        raise ProblemError(f"{source}: [model].kind: the problem runs to {format_epoch(problem.latest_epoch(), 0)} "
-                           f"TDB, past the DE421 span of the ephemeris model (ends {format_epoch(hi, 0)} TDB)")
+        raise ProblemError(f"{source}: {_latest_key(problem)}: the problem runs to "
+                           f"{format_epoch(problem.latest_epoch(), 0)} TDB, past the DE421 span of the ephemeris "
+                           f"model (ends {format_epoch(hi, 0)} TDB; the path must end a day before)")
+
+
+def _latest_key(problem: Problem) -> str:
+    """The key that sets :meth:`Problem.latest_epoch` (the one to change when it runs too late)."""
+    a, t0 = problem.arrival, problem.start_epoch
+    ends = [(b.window[1], f"[[burn]] #{i}.window") for i, b in enumerate(problem.burns, 1)]
+    if a.epoch_window is not None:
+        ends.append((a.epoch_window[1], "[return].epoch_window"))
+    if a.max_duration_days is not None:
+        ends.append((t0 + a.max_duration_days * 86400.0, "[return].max_duration_days"))
+    if a.epoch_window is None and a.max_duration_days is None:
+        ends.append((t0 + 12 * 86400.0, "[return].max_duration_days (default 12 days)"))
+    return max(ends, key=lambda e: e[0])[1]
+
+
+def _check_depth(d, source: str) -> None:
+    """Refuse nesting deeper than :data:`MAX_DEPTH` (without recursion, so any depth is safe)."""
+    stack = [(d, 1)]
+    while stack:
+        x, depth = stack.pop()
+        if depth > MAX_DEPTH:
+            raise ProblemError(f"{source}: arrays or tables nested more than {MAX_DEPTH} deep; a problem file "
+                               "needs at most 3 levels")
+        if isinstance(x, dict):
+            stack.extend((v, depth + 1) for v in x.values())
+        elif isinstance(x, list):
+            stack.extend((v, depth + 1) for v in x)
 
 
 def _propulsion(t: "_Table") -> Propulsion:
@@ -223,6 +269,9 @@ def _model(t: "_Table") -> ModelSpec:
         raise t.error("continuation", f"a list of distinct model kinds other than {kind!r} "
                                       f"(from {', '.join(MODEL_KINDS)})", chain)
     moon = {}
+    if "moon" in t.data and kind != "earth-moon":
+        raise ProblemError(f"{t.where('moon')}: only the earth-moon model reads a [model.moon] table; "
+                           f"kind = {kind!r} places the Moon from DE421 and would ignore it")
     if "moon" in t.data:
         m = _Table.sub(t, "moon")
         for key, lo, hi, lo_open in (("radius_km", 0.0, 1e7, True), ("period_days", 0.0, 1e4, True),
@@ -271,17 +320,18 @@ def _start(t: "_Table") -> StateStart | ParkingStart:
         r = t.vector("position_km")
         v = t.vector("velocity_kms")
         state = r + v
+    pos_key, vel_key = ("elements", "elements") if "elements" in t.data else ("position_km", "velocity_kms")
     if not R_EARTH < math.dist(state[:3], (0, 0, 0)) < 2e6:
-        raise t.error("position_km", f"a geocentric position between {R_EARTH} km (Earth's radius) "
+        raise t.error(pos_key, f"a geocentric position between {R_EARTH} km (Earth's radius) "
                                      "and 2,000,000 km", list(state[:3]))
     if not math.dist(state[3:], (0, 0, 0)) < 50.0:
-        raise t.error("velocity_kms", "a speed below 50 km/s", list(state[3:]))
+        raise t.error(vel_key, "a speed below 50 km/s", list(state[3:]))
     t.done(' with kind = "state"' + (" and [start.elements]" if "elements" in t.data else ""))
     return StateStart(epoch=epoch, state=state)
 
 
 def _burns(top: "_Table", start) -> tuple[BurnSpec, ...]:
-    raw = top.get("burn", _REQUIRED)
+    raw = top.get("burn", _REQUIRED, "one or more [[burn]] tables (window, max_dv_mps)")
     if not (isinstance(raw, list) and raw and all(isinstance(b, dict) for b in raw)):
         raise top.error("burn", "one or more [[burn]] tables", raw)
     t0 = start.epoch if isinstance(start, StateStart) else start.epoch_window[0]
@@ -326,6 +376,13 @@ def _arrival(t: "_Table", start, burns) -> ReturnSpec:
         inclination_deg=t.pair("inclination_deg", None, lo=0.0, hi=180.0),
         max_duration_days=t.number("max_duration_days", None, lo=0.0, hi=100.0, lo_open=True))
     spec = _flight_path_margin(t, spec)
+    if spec.max_duration_days is not None:
+        t_last = t0 + spec.max_duration_days * 86400.0
+        late = next((i for i, b in enumerate(burns, 1) if b.window[0] >= t_last), None)
+        if late is not None:
+            raise t.error("max_duration_days", f"a duration that reaches past the opening of [[burn]] #{late}'s "
+                                               f"window ({format_epoch(burns[late - 1].window[0], 0)} TDB)",
+                          spec.max_duration_days)
     t.done()
     return spec
 
@@ -375,6 +432,7 @@ class _Table:
 
     # -- errors ------------------------------------------------------------------------------
     def where(self, key: str) -> str:
+        key = _short_key(key)
         if not self.label:
             return f"{self.source}: [{key}]"
         return f"{self.source}: {self.label}.{key}"
@@ -385,7 +443,7 @@ class _Table:
         return ProblemError(f"{self.where(key)}: expected {expected}, got {_show(got)}")
 
     def error_unknown(self, key, known, section=False) -> ProblemError:
-        near = difflib.get_close_matches(str(key), known, n=1)
+        near = difflib.get_close_matches(str(key)[:100], known, n=1)
         hint = f"; did you mean {near[0]!r}?" if near else f"; expected one of {', '.join(known)}"
         kind = "unknown section" if section else "unknown key"
         return ProblemError(f"{self.where(key)}: {kind}{hint}")
@@ -432,6 +490,10 @@ class _Table:
         x = self.get(key, default, what)
         if not isinstance(x, str) or (pattern is not None and not pattern.fullmatch(x)):
             raise self.error(key, what, x)
+        if _CONTROL_RE.search(x):
+            raise self.error(key, f"{what} without control characters (tab, carriage return, escape ...)", x)
+        if len(x) > 2000:
+            raise self.error(key, f"{what} of at most 2,000 characters", x)
         return x
 
     def choice(self, key, options, default=_REQUIRED):
@@ -482,7 +544,18 @@ class _Table:
 
 
 def _is_number(x) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+    """A finite int or float (an integer too large for a float is not a number here)."""
+    if isinstance(x, bool) or not isinstance(x, (int, float)):
+        return False
+    try:
+        return math.isfinite(float(x))
+    except OverflowError:
+        return False
+
+
+def _short_key(key) -> str:
+    text = str(key)
+    return text if len(text) <= 60 else text[:57] + "..."
 
 
 def _range_text(what, lo, hi, lo_open=False):
@@ -504,7 +577,10 @@ def _num(x: float) -> str:
 
 
 def _show(x) -> str:
-    text = repr(x)
+    try:
+        text = repr(x)
+    except (ValueError, RecursionError):  # an integer past Python's digit limit; nesting
+        text = f"a {type(x).__name__} too large to show"
     return text if len(text) <= 80 else text[:77] + "..."
 
 

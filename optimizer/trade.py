@@ -783,14 +783,14 @@ def _spec_axis(spec: dict, key: str, where: str, epochs: bool):
     def value(v, k):
         if epochs:
             if not isinstance(v, str):
-                raise SweepSpecError(f"{where}.{k}: expected an epoch like \"2027-05-10T06:00:00 TDB\", got {v!r}")
+                raise SweepSpecError(f"{where}.{k}: expected an epoch like \"2027-05-10T06:00:00 TDB\", got {_short(v)}")
             try:
                 return parse_epoch(v)
             except ValueError:
                 raise SweepSpecError(f"{where}.{k}: expected an ISO-8601 TDB epoch like "
-                                     f"\"2027-05-10T06:00:00 TDB\", got {v!r}") from None
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or v <= 0:
-            raise SweepSpecError(f"{where}.{k}: expected a positive number of days, got {v!r}")
+                                     f"\"2027-05-10T06:00:00 TDB\", got {_short(v)}") from None
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 < v <= 100:
+            raise SweepSpecError(f"{where}.{k}: expected a number of days above 0 and at most 100, got {_short(v)}")
         return float(v)
 
     if isinstance(x, list):
@@ -801,7 +801,7 @@ def _spec_axis(spec: dict, key: str, where: str, epochs: bool):
             raise SweepSpecError(f"{where}.{key}: values must increase strictly")
         return tuple(vals)
     if not isinstance(x, dict):
-        raise SweepSpecError(f"{where}.{key}: expected {what}, got {x!r}")
+        raise SweepSpecError(f"{where}.{key}: expected {what}, got {_short(x)}")
     for k in x:
         if k not in ("start", "stop", "count"):
             raise SweepSpecError(f"{where}.{key}.{k}: unknown key; expected start, stop and count")
@@ -810,7 +810,7 @@ def _spec_axis(spec: dict, key: str, where: str, epochs: bool):
             raise SweepSpecError(f"{where}.{key}.{k}: missing; expected {what}")
     n = x["count"]
     if isinstance(n, bool) or not isinstance(n, int) or not 1 <= n <= MAX_COUNT:
-        raise SweepSpecError(f"{where}.{key}.count: expected a whole number from 1 to {MAX_COUNT}, got {n!r}")
+        raise SweepSpecError(f"{where}.{key}.count: expected a whole number from 1 to {MAX_COUNT}, got {_short(n)}")
     a, b = value(x["start"], f"{key}.start"), value(x["stop"], f"{key}.stop")
     if n == 1 and a != b:
         raise SweepSpecError(f"{where}.{key}: with count = 1, start and stop must be equal")
@@ -818,6 +818,15 @@ def _spec_axis(spec: dict, key: str, where: str, epochs: bool):
         raise SweepSpecError(f"{where}.{key}.stop: expected later than {key}.start" if epochs else
                              f"{where}.{key}.stop: expected larger than {key}.start")
     return tuple(float(v) for v in np.linspace(a, b, n))
+
+
+def _short(x) -> str:
+    """``repr`` cut to 80 characters (an integer of hundreds of digits is not echoed whole)."""
+    try:
+        text = repr(x)
+    except ValueError:
+        return f"a {type(x).__name__} too large to show"
+    return text if len(text) <= 80 else text[:77] + "..."
 
 
 def parse_sweep_spec(spec: dict, problem: Problem | None = None, source: str = "<sweep>") -> SweepSpec:
@@ -850,18 +859,18 @@ def parse_sweep_spec(spec: dict, problem: Problem | None = None, source: str = "
     arrivals = _spec_axis(spec, "arrival_epochs", where, True) if has_e else None
     durations = _spec_axis(spec, "return_durations_days", where, False) if has_d else None
     tol_h = spec.get("arrival_tolerance_hours", 0.0)
-    if isinstance(tol_h, bool) or not isinstance(tol_h, (int, float)) or not math.isfinite(tol_h) or tol_h < 0:
-        raise SweepSpecError(f"{where}.arrival_tolerance_hours: expected a number of at least 0, got {tol_h!r}")
+    if isinstance(tol_h, bool) or not isinstance(tol_h, (int, float)) or not 0 <= tol_h <= 1000:
+        raise SweepSpecError(f"{where}.arrival_tolerance_hours: expected a number from 0 to 1,000, got {_short(tol_h)}")
     if has_d and "arrival_tolerance_hours" in spec:
         raise SweepSpecError(f"{where}.arrival_tolerance_hours: applies to arrival_epochs only")
     burn = spec.get("burn", 1)
     n_burns = len(problem.burns) if problem is not None else 10**6
     if isinstance(burn, bool) or not isinstance(burn, int) or not 1 <= burn <= n_burns:
         raise SweepSpecError(f"{where}.burn: expected a whole number from 1 to {n_burns} (which [[burn]]), "
-                             f"got {burn!r}")
+                             f"got {_short(burn)}")
     it = spec.get("max_iterations", DEFAULT_MAX_ITER)
     if isinstance(it, bool) or not isinstance(it, int) or not 5 <= it <= 3000:
-        raise SweepSpecError(f"{where}.max_iterations: expected a whole number from 5 to 3000, got {it!r}")
+        raise SweepSpecError(f"{where}.max_iterations: expected a whole number from 5 to 3000, got {_short(it)}")
     retry = spec.get("retry_failed", True)
     if not isinstance(retry, bool):
         raise SweepSpecError(f"{where}.retry_failed: expected true or false, got {retry!r}")
@@ -880,6 +889,21 @@ def parse_sweep_spec(spec: dict, problem: Problem | None = None, source: str = "
                     raise SweepSpecError(f"{where}.arrival_epochs: {format_epoch(t, 0)} TDB (value {i + 1}) lies "
                                          f"outside [return].epoch_window [{format_epoch(win[0], 0)}, "
                                          f"{format_epoch(win[1], 0)}] TDB")
+        t0 = problem.start_epoch
+        for i, t in enumerate(arrivals or ()):
+            if not t > max(t0, burns[0]):
+                raise SweepSpecError(f"{where}.arrival_epochs: {format_epoch(t, 0)} TDB (value {i + 1}) is not "
+                                     f"after the start and the first burn epoch ({format_epoch(max(t0, burns[0]), 0)} "
+                                     "TDB)")
+        if problem.model.kind == "ephemeris" or "ephemeris" in problem.model.continuation:
+            from .problem_file import EPHEMERIS_SPAN
+
+            last = arrivals[-1] if arrivals else t0 + durations[-1] * 86400.0
+            key = "arrival_epochs" if arrivals else "return_durations_days"
+            if last + 86400.0 > EPHEMERIS_SPAN[1]:
+                raise SweepSpecError(f"{where}.{key}: an arrival at {format_epoch(last, 0)} TDB runs past the DE421 "
+                                     f"span of the ephemeris model (ends {format_epoch(EPHEMERIS_SPAN[1], 0)} TDB; "
+                                     "the path must end a day before)")
         mx = problem.arrival.max_duration_days
         if durations is not None and mx is not None and durations[-1] > mx + 1e-9:
             raise SweepSpecError(f"{where}.return_durations_days: {durations[-1]} exceeds "

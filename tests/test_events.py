@@ -151,9 +151,11 @@ def test_check_refuses_a_plan_whose_start_was_moved(tmp_path, capsys):
     problem, model, plan = make_case()
     plan.problem = problem_to_dict(problem)  # what a run folder's plan.json carries
     good = tmp_path / "good.json"
-    good.write_text(json.dumps(plan.to_dict()))
+    from optimizer.export import plan_json
+
+    good.write_text(json.dumps(plan_json(plan, problem)))  # the plan with the problem it carries
     assert main(["check", str(good), "--quiet"]) == 0
-    data = plan.to_dict()
+    data = plan_json(plan, problem)
     data["start"]["state_km_kms"][1] += 0.5  # half a kilometre: the burns still re-propagate
     bad = tmp_path / "moved.json"
     bad.write_text(json.dumps(data))

@@ -329,7 +329,9 @@ def test_solve_command(case, stub_solver, tmp_path):
     code, _, err = run(["solve", str(path), "--out", str(out), "--force", "--quiet"])
     assert code == 3 and "perilune range cannot be met" in err
     assert "NOT VERIFIED" in (out / "report.md").read_text()
-    assert run(["check", str(out / "plan.json"), "--quiet"])[0] == 0  # the burns themselves still check
+    # the burns themselves still check, but the file does not claim a verified plan: check is a gate
+    code, _, err = run(["check", str(out / "plan.json"), "--quiet"])
+    assert code == 3 and "status: the plan says 'infeasible'" in err and "re-verification passed" in err
 
 
 def test_demo_command_finds_its_problem(case, stub_solver, tmp_path):

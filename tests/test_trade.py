@@ -335,7 +335,7 @@ def test_spec_axes():
     ({"burn_epochs": ["2027-05-12T00:00:00", "2027-05-11T00:00:00"], "return_durations_days": [4.0]},
      r"\[sweep\]\.burn_epochs: values must increase strictly"),
     ({"burn_epochs": ["2027-05-12T00:00:00"], "return_durations_days": [4.0, -1.0]},
-     r"\[sweep\]\.return_durations_days\[1\]: expected a positive number of days"),
+     r"\[sweep\]\.return_durations_days\[1\]: expected a number of days above 0 and at most 100"),
     ({"burn_epochs": ["2027-05-12T00:00:00"], "return_durations_days": [4.0], "arrival_tolerance_hours": 1.0},
      r"arrival_tolerance_hours: applies to arrival_epochs only"),
     ({"burn_epochs": ["2027-05-12T00:00:00"], "arrival_epoch": ["2027-05-16T00:00:00"]},

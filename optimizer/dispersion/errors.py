@@ -113,16 +113,22 @@ class ErrorModel:
 
 # ------------------------------------------------------------------------------------------------
 def _number(x) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+    if isinstance(x, bool) or not isinstance(x, (int, float)):
+        return False
+    try:
+        return math.isfinite(float(x))
+    except OverflowError:  # an integer too large for a float
+        return False
 
 
 def _check_keys(table: dict, name: str, where) -> None:
     known = TABLE_KEYS[name]
     for key in table:
         if key not in known:
-            near = difflib.get_close_matches(str(key), known, n=1)
+            near = difflib.get_close_matches(str(key)[:100], known, n=1)
             hint = f"; did you mean {near[0]!r}?" if near else f"; expected one of {', '.join(known)}"
-            raise ErrorModelError(f"{where(key)}: unknown key{hint}")
+            shown = str(key) if len(str(key)) <= 60 else str(key)[:57] + "..."
+            raise ErrorModelError(f"{where(shown)}: unknown key{hint}")
 
 
 def error_model_from_table(table: dict | None, source: str = "<dict>", overrides: dict | None = None) -> ErrorModel:

@@ -30,7 +30,12 @@ from .report import report_markdown
 from .sampling import plan_model, sample_plan
 from .tables import burns_frame, nodes_frame, trajectory_frame, write_csv
 
-__all__ = ["write_run", "plan_json", "write_plot_files", "run_summary"]
+__all__ = ["write_run", "plan_json", "write_plot_files", "run_summary", "OutputPathError", "check_writable",
+           "refuse_existing", "save_rescued_plan"]
+
+
+class OutputPathError(ValueError):
+    """An output folder that cannot be made or written (a file in its way, no write permission)."""
 
 FILES = {
     "plan.json": "the plan (slingback-plan format, version 2; schema docs/plan.schema.json) with its problem",
@@ -108,7 +113,7 @@ def write_run(plan, problem, out_dir, *, force: bool = False, model=None, create
 def staged_folder(out: Path, force: bool):
     """A temporary folder beside ``out`` to write into; moved into place whole when the block
     ends, removed (leaving ``out`` as it was) when the block raises."""
-    refuse_existing(out, force)
+    refuse_existing(out, force)  # checked here too: the Python API may come straight here
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
     try:
@@ -121,11 +126,53 @@ def staged_folder(out: Path, force: bool):
 
 
 def refuse_existing(out: Path, force: bool):
-    """Raise FileExistsError if ``out`` exists (as anything but a folder, or at all without force)."""
+    """Refuse an output folder before any work is done.
+
+    Raises FileExistsError if ``out`` exists (as anything but a folder, or at all without force),
+    :class:`OutputPathError` if it could not be made or written (:func:`check_writable`).
+    """
+    out = Path(out)
     if out.exists() and not out.is_dir():
         raise FileExistsError(f"{out} exists and is not a folder")
     if out.exists() and not force:
         raise FileExistsError(f"{out} already exists; use --force (force=True) to replace it")
+    check_writable(out.parent if not out.exists() else out, folder_of=out)
+
+
+def check_writable(folder, folder_of=None):
+    """Raise :class:`OutputPathError` unless ``folder`` is, or can be made as, a writable folder.
+
+    The nearest existing ancestor must be a folder (not a file) that we may write into.  With
+    ``folder_of``, the message speaks of that output path.
+    """
+    folder = Path(folder)
+    what = Path(folder_of) if folder_of is not None else folder
+    probe = folder
+    while not probe.exists():
+        if probe.is_symlink():
+            raise OutputPathError(f"{what}: {probe} is a broken link")
+        if probe.parent == probe:
+            break
+        probe = probe.parent
+    probe = probe if probe.exists() else Path(".")
+    if not probe.is_dir():
+        raise OutputPathError(f"{what}: cannot be made, {probe} is a file, not a folder")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise OutputPathError(f"{what}: cannot be written, no permission to write in {probe}")
+    if folder_of is not None and Path(folder_of).exists() and not os.access(Path(folder_of).parent, os.W_OK | os.X_OK):
+        raise OutputPathError(f"{what}: cannot be replaced, no permission to write in {Path(folder_of).parent}")
+
+
+def save_rescued_plan(plan, problem, out: Path) -> Path | None:
+    """After a failed write of ``out``: keep the plan (``plan.json`` with its problem) in the system's
+    temporary folder so the solve is not lost; returns the file, or None if that fails too."""
+    try:
+        fd, name = tempfile.mkstemp(prefix=f"slingback-{Path(out).name}-", suffix=".plan.json")
+        with os.fdopen(fd, "w") as f:
+            f.write(json.dumps(plan_json(plan, problem), indent=1) + "\n")
+        return Path(name)
+    except OSError:
+        return None
 
 
 def move_into_place(tmp: Path, out: Path, force: bool):
@@ -164,8 +211,9 @@ def _write_contents(plan, problem, folder: Path, model, created):
     name = _model_name(plan, problem)
     notes, files, figures = [], ["plan.json", "problem.toml", "burns.csv"], []
     (folder / "plan.json").write_text(json.dumps(plan_json(plan, problem), indent=1) + "\n")
+    mark = "" if plan.verified else f"# NOT VERIFIED: this run's plan is {plan.status}; do not use it as a result.\n"
     (folder / "problem.toml").write_text(
-        f"# Problem of the slingback {__version__} run {plan.name!r} (status {plan.status}).\n"
+        f"# Problem of the slingback {__version__} run {plan.name!r} (status {plan.status}).\n{mark}"
         f"# {CAUTION}\n\n" + dumps_toml(problem_to_dict(problem)))
     write_csv(burns_frame(plan, problem), folder / "burns.csv")
     if len(plan.trajectory_t):
