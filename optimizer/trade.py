@@ -36,15 +36,12 @@ cell that failed keeps its status and reason and NaN values.
 
 from __future__ import annotations
 
-import concurrent.futures as cf
 import dataclasses
 import hashlib
 import json
 import math
-import multiprocessing
 import os
 import time
-import uuid
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -53,6 +50,7 @@ import pandas as pd
 
 from . import __version__
 from .constants import CAUTION, SECONDS_PER_DAY
+from .executors import atomic_json, make_executor
 from .plan import Plan
 from .export.manifest import write_folder_manifest
 from .export.run import refuse_existing, staged_folder
@@ -273,93 +271,16 @@ def _warm_of(plan: Plan) -> dict:
     return {**plan.warm, "model": plan.model.get("name")}
 
 
-# ------------------------------------------------------------------------------------------------
-# Executors: one interface over in-process, local processes and Dask
-# ------------------------------------------------------------------------------------------------
-class _Inline:
-    """Runs tasks in this process, one at a time (``workers=1``)."""
-
-    def __init__(self):
-        self.queue = []
-
-    def submit(self, fn, *args):
-        self.queue.append((fn, args))
-        return len(self.queue) - 1
-
-    def wait_one(self, pending):
-        key = min(pending)
-        fn, args = self.queue[key]
-        return [(key, fn(*args))]
-
-    def close(self):
-        pass
-
-
-class _Processes:
-    """A local process pool (spawned, so no thread state of this process is inherited)."""
-
-    def __init__(self, workers):
-        # the cores are shared out: a worker's CasADi map gets cores // workers threads
-        threads = max(1, (os.cpu_count() or 1) // workers)
-        self.pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
-                                           initializer=_worker_threads, initargs=(threads,))
-
-    def submit(self, fn, *args):
-        return self.pool.submit(fn, *args)
-
-    def wait_one(self, pending):
-        done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
-        return [(f, f.result()) for f in done]
-
-    def close(self):
-        self.pool.shutdown(wait=True, cancel_futures=True)
-
-
-class _Dask:
-    """A Dask distributed cluster, by scheduler address or an existing ``distributed.Client``."""
-
-    def __init__(self, scheduler):
-        import distributed
-
-        self.distributed = distributed
-        if isinstance(scheduler, distributed.Client):
-            self.client, self.own = scheduler, False
-        else:
-            self.client, self.own = distributed.Client(scheduler), True
-
-    def submit(self, fn, *args):
-        return self.client.submit(fn, *args, pure=False)
-
-    def wait_one(self, pending):
-        done = self.distributed.wait(list(pending), return_when="FIRST_COMPLETED").done
-        return [(f, f.result()) for f in done]
-
-    def close(self):
-        if self.own:
-            self.client.close()
-
-
 def _executor(workers, scheduler):
-    if scheduler is not None:
-        return _Dask(scheduler)
-    n = (os.cpu_count() or 1) if workers is None else int(workers)
-    if n < 1:
-        raise SweepSpecError(f"workers: expected a whole number of at least 1, got {workers!r}")
-    return _Inline() if n == 1 else _Processes(n)
+    """Dask, local processes (the cores shared out: a worker's CasADi map gets cores // workers
+    threads) or this process (:mod:`optimizer.executors`)."""
+    return make_executor(workers if workers is None else int(workers), scheduler, SweepSpecError,
+                         lambda n: (_worker_threads, (max(1, (os.cpu_count() or 1) // n),)))
 
 
 # ------------------------------------------------------------------------------------------------
 # Resume folder
 # ------------------------------------------------------------------------------------------------
-def _atomic_json(path: Path, data) -> None:
-    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.tmp")
-    with open(tmp, "w") as f:
-        json.dump(data, f, allow_nan=True, separators=(",", ":"))
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
-
-
 class _Store:
     """One JSON file per finished cell in ``resume_dir/cells``; ``sweep.json`` names the sweep."""
 
@@ -380,7 +301,7 @@ class _Store:
                 raise SweepSpecError(f"resume_dir: {self.folder} holds a different sweep (problem, grid or "
                                      "options changed); use an empty folder")
         else:
-            _atomic_json(head, {"format": SWEEP_FORMAT, "format_version": FORMAT_VERSION,
+            atomic_json(head, {"format": SWEEP_FORMAT, "format_version": FORMAT_VERSION,
                                 "software": f"slingback {__version__}", "fingerprint": key,
                                 "definition": definition})
 
@@ -401,7 +322,7 @@ class _Store:
 
     def save(self, label: str, entry: dict) -> None:
         if self.folder is not None:
-            _atomic_json(self._path(label), {"format": CELL_FORMAT, "format_version": FORMAT_VERSION,
+            atomic_json(self._path(label), {"format": CELL_FORMAT, "format_version": FORMAT_VERSION,
                                              "fingerprint": self.key, **entry})
 
 

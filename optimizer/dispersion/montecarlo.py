@@ -10,13 +10,9 @@ skipped by a later run of the same plan, error model and seed.
 
 from __future__ import annotations
 
-import concurrent.futures as cf
 import hashlib
 import json
 import math
-import multiprocessing
-import os
-import uuid
 from pathlib import Path
 
 import numpy as np
@@ -26,6 +22,7 @@ from .. import __version__
 from ..constants import GM_EARTH, R_EARTH, R_MOON
 from ..models.factory import build_model
 from ..timescales import format_epoch
+from ..executors import atomic_json, make_executor
 from .errors import ErrorModelError
 from .sampling import (DISPERSION_ATOL, DISPERSION_RTOL, NUMERIC, Nominal, _factor, draw, entry_offsets, evaluate,
                        navigation_covariance_icrf, perturbed, sample_rng)
@@ -124,77 +121,8 @@ def _chunk_task(model, nominal: Nominal, errors, seed: int, start: int, stop: in
 
 
 # ------------------------------------------------------------------------------------------------
-class _Inline:
-    def __init__(self):
-        self.queue = []
-
-    def submit(self, fn, *args):
-        self.queue.append((fn, args))
-        return len(self.queue) - 1
-
-    def wait_one(self, pending):
-        key = min(pending)
-        fn, args = self.queue[key]
-        return [(key, fn(*args))]
-
-    def close(self):
-        pass
-
-
-class _Processes:
-    def __init__(self, workers):
-        self.pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
-
-    def submit(self, fn, *args):
-        return self.pool.submit(fn, *args)
-
-    def wait_one(self, pending):
-        done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
-        return [(f, f.result()) for f in done]
-
-    def close(self):
-        self.pool.shutdown(wait=True, cancel_futures=True)
-
-
-class _Dask:
-    def __init__(self, scheduler):
-        import distributed
-
-        self.distributed = distributed
-        if isinstance(scheduler, distributed.Client):
-            self.client, self.own = scheduler, False
-        else:
-            self.client, self.own = distributed.Client(scheduler), True
-
-    def submit(self, fn, *args):
-        return self.client.submit(fn, *args, pure=False)
-
-    def wait_one(self, pending):
-        done = self.distributed.wait(list(pending), return_when="FIRST_COMPLETED").done
-        return [(f, f.result()) for f in done]
-
-    def close(self):
-        if self.own:
-            self.client.close()
-
-
 def _executor(workers, scheduler):
-    if scheduler is not None:
-        return _Dask(scheduler)
-    n = (os.cpu_count() or 1) if workers is None else workers
-    if isinstance(n, bool) or not isinstance(n, int) or n < 1:
-        raise ErrorModelError(f"--workers: expected a whole number of at least 1, got {workers!r}")
-    return _Inline() if n == 1 else _Processes(n)
-
-
-# ------------------------------------------------------------------------------------------------
-def _atomic_json(path: Path, data) -> None:
-    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.tmp")
-    with open(tmp, "w") as f:
-        json.dump(data, f, allow_nan=True, separators=(",", ":"))
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    return make_executor(workers, scheduler, ErrorModelError, name="--workers")
 
 
 class _Store:
@@ -216,7 +144,7 @@ class _Store:
                 raise ErrorModelError(f"--resume: {self.folder} holds a different dispersion run (plan, "
                                       "error model or seed changed); use an empty folder")
         else:
-            _atomic_json(head, {"format": "slingback-dispersion-resume", "format_version": 1,
+            atomic_json(head, {"format": "slingback-dispersion-resume", "format_version": 1,
                                 "software": f"slingback {__version__}", "fingerprint": self.key,
                                 "definition": definition})
 
@@ -232,7 +160,7 @@ class _Store:
 
     def save(self, start, stop, rows):
         if self.folder is not None:
-            _atomic_json(self.folder / "chunks" / f"{start:07d}-{stop:07d}.json",
+            atomic_json(self.folder / "chunks" / f"{start:07d}-{stop:07d}.json",
                          {"fingerprint": self.key, "rows": rows})
 
 

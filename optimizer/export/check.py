@@ -21,7 +21,7 @@ from ..frames import rtn_matrix
 from ..plan import Plan
 from ..propagate import propagate
 from ..timescales import parse_epoch
-from ..problem_file import ProblemError, problem_from_dict
+from ..problem_file import ProblemError, _is_number, problem_from_dict
 from ..verify import verify
 from .sampling import plan_model, propagation_end
 
@@ -181,31 +181,22 @@ def claim_differences(data: dict, plan, problem, ver, model=None) -> list[str]:
         if "dv_rtn_mps" in raw and pre[i - 1] is not None:
             rtn = rtn_matrix(pre[i - 1][:3], pre[i - 1][3:]) @ dv
             claimed = raw["dv_rtn_mps"]
-            if not (isinstance(claimed, list) and len(claimed) == 3 and all(_finite(x) for x in claimed)):
+            if not (isinstance(claimed, list) and len(claimed) == 3 and all(_is_number(x) for x in claimed)):
                 out.append(f"burns[{i}].dv_rtn_mps: expected three numbers, got {_short(claimed)}")
             elif not np.linalg.norm(np.subtract(claimed, rtn)) <= tol:
                 out.append(f"burns[{i}].dv_rtn_mps: claimed {[round(x, 6) for x in claimed]}, re-derived "
                            f"{[round(float(x), 6) for x in rtn]} m/s")
         _compare_epoch(out, f"burns[{i}].epoch_tdb", raw.get("epoch_tdb"), b.epoch)
         for key in ("ignition_epoch_tdb", "cutoff_epoch_tdb"):  # finite-burn epochs: text against seconds
-            if key in raw and _finite(raw.get(key + "_s")):
+            if key in raw and _is_number(raw.get(key + "_s")):
                 _compare_epoch(out, f"burns[{i}].{key}", raw[key], float(raw[key + "_s"]))
     start = data.get("start", {})
     _compare_epoch(out, "start.epoch_tdb", start.get("epoch_tdb") if isinstance(start, dict) else None,
                    plan.start_epoch)
     for k, e in enumerate(data.get("events", []) or []):
-        if isinstance(e, dict) and _finite(e.get("epoch_tdb_s")):
+        if isinstance(e, dict) and _is_number(e.get("epoch_tdb_s")):
             _compare_epoch(out, f"events[{k + 1}].epoch_tdb", e.get("epoch_tdb"), float(e["epoch_tdb_s"]))
     return out
-
-
-def _finite(x) -> bool:
-    if isinstance(x, bool) or not isinstance(x, (int, float)):
-        return False
-    try:
-        return math.isfinite(float(x))
-    except OverflowError:
-        return False
 
 
 def _short(x) -> str:
@@ -217,7 +208,7 @@ def _short(x) -> str:
 
 
 def _compare(out, key, claimed, derived, tol, unit):
-    if not _finite(claimed):
+    if not _is_number(claimed):
         out.append(f"{key}: expected a number, got {_short(claimed)}")
     elif not abs(float(claimed) - derived) <= tol:
         out.append(f"{key}: claimed {float(claimed):.6f} {unit}, re-derived {derived:.6f} {unit}")
