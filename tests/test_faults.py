@@ -141,9 +141,13 @@ def _ipopt_loop(guard: str, count: int) -> str:
 def test_ctrl_c_stops_an_ipopt_solve_that_casadi_would_swallow():
     """CasADi stops IPOPT on a pending SIGINT but returns normally (the interrupt is consumed), so
     a loop of solves goes on (first run, a plain block: 3 solves complete); inside honour_ctrl_c the
-    interrupt reaches the caller during the first solve."""
+    interrupt reaches the caller at the solve it lands in, and the loop of 20 stops there.  (How
+    many solves end before the signal at 1 s depends on the machine: IPOPT sometimes gives up on
+    this problem in well under a second; measured on a loaded run, one solve had ended.)"""
     assert _ipopt_loop("open(os.devnull)", 3) == "no interrupt 3"
-    assert _ipopt_loop("honour_ctrl_c()", 200) == "interrupted after 0 solves"
+    out = _ipopt_loop("honour_ctrl_c()", 20)
+    assert out.startswith("interrupted after "), out
+    assert int(out.split()[2]) < 20
 
 
 def test_ctrl_c_during_solve_exits_130_with_one_line_and_writes_nothing(tmp_path):
