@@ -74,6 +74,22 @@ class Arc:
         return next((e for e in self.events if e.name == name), None)
 
 
+def _closest_approach(position, velocity, within):
+    """Event function whose rising zero is a minimum of distance to a body (``position(t)``,
+    ``velocity(t)``); with ``within`` (km) ``max(radial speed, distance - within)``, which cannot
+    change sign outside that sphere."""
+    if within is None:
+        def f(t, y):
+            return float(np.dot(y[:3] - position(t), y[3:] - velocity(t)))
+        return f
+
+    def f(t, y):
+        d = y[:3] - position(t)
+        dist = float(np.linalg.norm(d))
+        return max(float(np.dot(d, y[3:] - velocity(t))) / dist, dist - within)
+    return f
+
+
 def _event_functions(model, names, entry_radius, terminal, backward=False, perilune_within=None,
                      perigee_within=None):
     """Event functions for solve_ivp; returns (functions, their names).
@@ -104,27 +120,12 @@ def _event_functions(model, names, entry_radius, terminal, backward=False, peril
             raise ValueError(f"unknown event {name!r}; expected one of {', '.join(EVENT_NAMES)}")
         if name in ("perilune", "impact_moon") and not has_moon:
             continue
-        if name == "perilune" and perilune_within is not None:
-            def f(t, y):
-                d = y[:3] - model.moon_position(t)
-                dist = float(np.linalg.norm(d))
-                return max(float(np.dot(d, y[3:] - model.moon_velocity(t))) / dist, dist - perilune_within)
-            add(f, name, turn, name in terminal)
-        elif name == "perilune":
-            def f(t, y):
-                d = y[:3] - model.moon_position(t)
-                return float(np.dot(d, y[3:] - model.moon_velocity(t)))
-            add(f, name, turn, name in terminal)
-        elif name == "perigee" and perigee_within is not None:
-            def f(t, y):
-                r = y[:3] - model.earth_position(t)
-                dist = float(np.linalg.norm(r))
-                return max(float(np.dot(r, y[3:] - model.earth_velocity(t))) / dist, dist - perigee_within)
-            add(f, name, turn, name in terminal)
+        if name == "perilune":
+            add(_closest_approach(model.moon_position, model.moon_velocity, perilune_within), name, turn,
+                name in terminal)
         elif name == "perigee":
-            def f(t, y):
-                return float(np.dot(y[:3] - model.earth_position(t), y[3:] - model.earth_velocity(t)))
-            add(f, name, turn, name in terminal)
+            add(_closest_approach(model.earth_position, model.earth_velocity, perigee_within), name, turn,
+                name in terminal)
         elif name == "entry":
             if entry_radius is None:
                 raise ValueError("the entry event needs entry_radius")

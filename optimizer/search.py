@@ -55,7 +55,6 @@ FD_STEP, STOP_STEP = 1e-4, 1e-5
 #: Targeting gives up when its trust region shrinks below STALL_RADIUS (km/s); a point whose
 #: violation is at most NEAR units (see ``target``) still seeds the NLP.
 STALL_RADIUS, NEAR = 1e-5, 5.0
-_TRACE = False
 HOUR = 3600.0
 
 
@@ -323,9 +322,6 @@ def target(problem, model, t_b, y_b, t_end, *, direction="free", leg="outbound",
                 return None, "a nearby burn's return never comes back to Earth", None
         proj = projector(h)
         d, full = _least_norm_step(c, proj @ jac, proj @ h, lo, hi, radius, nonneg)
-        if _TRACE:
-            print("  it", it, "c", np.linalg.norm(c) * 1000, "viol", viol, "d", np.linalg.norm(d) * 1000,
-                  "radius", radius)
         if np.linalg.norm(full) < STOP_STEP and viol <= 1.0:
             break
         estimate = np.linalg.norm(basis @ (c + full))  # the linearised least-norm answer
@@ -500,7 +496,7 @@ def basins(seeds, limit=MAX_STARTS) -> list[Seed]:
             if vals[k] <= left and vals[k] <= right:
                 picks.append(s)
     picks.sort(key=lambda s: s.dv_mps)
-    return picks[: max(limit * 3, limit)]
+    return picks[: 3 * limit]  # room for starts skipped as repeats
 
 
 # -- the global solve -------------------------------------------------------------------------------
@@ -508,8 +504,8 @@ def global_solve(problem, model, solve_from, say=lambda m: None):
     """Screen, then solve the most promising starts and keep the cheapest verified plan.
 
     ``solve_from(burns)`` solves the NLP from the path through ``burns`` [(epoch, dv km/s) per burn
-    of the problem] and returns a Plan (the solver's loop, verification included).  Returns the
-    chosen Plan with ``solver["search"]`` recording every seed and start, or None when no seed met
+    of the problem] and returns a Plan (the solver's loop, verification included).  Returns (the
+    cheapest verified Plan or None, the record of every seed and start); None also when no seed met
     the ranges (the caller falls back on its own guess).
     """
     t_start = time.perf_counter()
@@ -529,8 +525,10 @@ def global_solve(problem, model, solve_from, say=lambda m: None):
         if any(b == s.burn and f == s.family and abs(t - s.epoch) < 1.0 for b, f, t in tried_epochs):
             continue
         tried_epochs.append((s.burn, s.family, s.epoch))
-        burns = [(float(np.clip(s.epoch if j == s.burn else _rest_epoch(problem, j, t_peri), *b.window)),
-                  s.dv if j == s.burn else np.zeros(3)) for j, b in enumerate(problem.burns)]
+        # the seed's burn at its epoch (inside its window by construction); the others at zero in
+        # their windows' middle
+        burns = [(s.epoch, s.dv) if j == s.burn else (0.5 * sum(b.window), np.zeros(3))
+                 for j, b in enumerate(problem.burns)]
         say(f"search: start {len(record['starts']) + 1} from burn {s.burn + 1} at "
             f"{(s.epoch - problem.start.epoch) / HOUR:.1f} h ({s.family}), screened {s.dv_mps:.3f} m/s")
         t0 = time.perf_counter()
@@ -551,13 +549,19 @@ def global_solve(problem, model, solve_from, say=lambda m: None):
     return best, record
 
 
-def search_summary(record) -> str:
-    """One sentence: the seeds tried, why those that failed did, and how each start ended."""
-    seeds = record.get("seeds", [])
+def failed_outcomes(seeds) -> dict:
+    """How many seeds (records) failed for each reason."""
     why = {}
     for s in seeds:
         if s.get("screened_dv_mps") is None:
             why[s["outcome"]] = why.get(s["outcome"], 0) + 1
+    return why
+
+
+def search_summary(record) -> str:
+    """One sentence: the seeds tried, why those that failed did, and how each start ended."""
+    seeds = record.get("seeds", [])
+    why = failed_outcomes(seeds)
     ok = len(seeds) - sum(why.values())
     text = f"the global search screened {len(seeds)} seeds ({ok} met the ranges"
     text += ("; " + ", ".join(f"{n} {w}" for w, n in why.items())) if why else ""
@@ -567,12 +571,6 @@ def search_summary(record) -> str:
         text += "; starts solved: " + ", ".join(
             f"burn {s['burn']} at {s['epoch_tdb_s']:.0f} s ({s['family']}): {s.get('status')}" for s in starts)
     return text
-
-
-def _rest_epoch(problem, j, t_peri):
-    """Where a burn held at zero sits in a start: its window's middle (before/after the perilune)."""
-    lo, hi = problem.burns[j].window
-    return 0.5 * (lo + hi)
 
 
 __all__ = ["Seed", "target", "screen", "basins", "global_solve", "seed_epochs", "ballistic_path"]

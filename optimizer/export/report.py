@@ -15,6 +15,7 @@ from ..constants import CAUTION
 from ..judge import ACTIVE_TOL, ConstraintRow
 from ..plan import solver_record
 from ..propellant import G0, finite_burns
+from ..search import failed_outcomes
 from ..timescales import format_epoch
 
 __all__ = ["ConstraintRow", "constraint_rows", "report_markdown", "ACTIVE_TOL"]
@@ -82,10 +83,7 @@ def _search_section(plan, problem) -> list[str]:
         for edge, word in ((b.window[0], "opens"), (b.window[1], "closes")):
             if abs(burn.epoch - edge) <= 1.0:
                 L += [f"Burn {j + 1} sits where its window {word}: a wider window may be cheaper.", ""]
-    failed = {}
-    for s in seeds:
-        if s.get("screened_dv_mps") is None:
-            failed[s["outcome"]] = failed.get(s["outcome"], 0) + 1
+    failed = failed_outcomes(seeds)
     if failed:
         L += ["Seeds that did not meet the ranges: " + "; ".join(f"{n} x {why}" for why, n in failed.items()) + ".", ""]
     return L
