@@ -43,9 +43,11 @@ Construction of one case (a *planted* plan, so the optimum has a known upper bou
    ``t_b`` is then a feasible plan, so the optimum is at most ``|Δv|``: the **planted bound**.
    ``planted_path`` re-propagates it (the test checks it meets every constraint).
 
-Arrival bookkeeping used everywhere here (``path_summary``): the first perilune of the path, then
-the first entry-interface crossing (entry target) or first perigee (perigee target) after it,
-each found by the propagator's events in two legs (start to perilune, perilune to arrival).
+Arrival bookkeeping used everywhere here (``path_summary``): the first perilune of the path inside
+``REF_LUNAR_SPHERE_KM`` of the Moon (a minimum of lunar distance farther out, e.g. a dip a few hours
+after a start far from the Moon, is not a perilune), then the first entry-interface crossing
+(entry target) or first perigee (perigee target) after it, each found by the propagator's events in
+two legs (start to perilune, perilune to arrival).
 """
 
 from __future__ import annotations
@@ -66,7 +68,11 @@ from optimizer.seed import ballistic
 from optimizer.timescales import parse_epoch
 
 GENERATOR_ID = 10_2026  # part of the rng seed: changing it changes every case
-GENERATOR_VERSION = "global-cases-3"
+GENERATOR_VERSION = "global-cases-4"
+# The Moon's sphere of influence, about 66,000 km (Laplace radius a (m_Moon/m_Earth)^(2/5); value
+# from memory, e.g. Curtis, Orbital Mechanics for Engineering Students, table of spheres of
+# influence).  Rounded here on its own, not taken from optimizer.events.
+REF_LUNAR_SPHERE_KM = 66000.0
 HOUR = 3600.0
 DAY = 86400.0
 N_SCAN = 20  # reference scan epochs per case (evenly spaced over burn 1's window)
@@ -164,7 +170,7 @@ def path_summary(model, problem, t, y, rtol=VERIFY_RTOL, atol=VERIFY_ATOL) -> Su
     """Propagate ``y`` at ``t`` (after the last burn, before perilune) to the arrival."""
     t_end = problem.latest_epoch()
     leg1 = propagate(model, t, y, t_end, events=("perilune", "impact_earth", "impact_moon"),
-                     terminal=("perilune",), rtol=rtol, atol=atol)
+                     terminal=("perilune",), rtol=rtol, atol=atol, perilune_within=REF_LUNAR_SPHERE_KM)
     peri = leg1.first("perilune")
     nan = float("nan")
     if peri is None:
@@ -214,7 +220,7 @@ def full_path_summary(model, problem, burns, rtol=VERIFY_RTOL, atol=VERIFY_ATOL)
     burns = sorted(((float(e), np.asarray(d, dtype=float)) for e, d in burns), key=lambda b: b[0])
     t_end = problem.latest_epoch()
     arcs = propagate_burns(model, t0, y0, burns, t_end, events=("perilune", "impact_earth", "impact_moon"),
-                           terminal=("perilune",), rtol=rtol, atol=atol)
+                           terminal=("perilune",), rtol=rtol, atol=atol, perilune_within=REF_LUNAR_SPHERE_KM)
     # propagate_burns stops at the first terminal event; the burns after it are then applied below
     last = arcs[-1]
     peri = next((e for a in arcs for e in a.events if e.name == "perilune"), None)

@@ -53,7 +53,7 @@ SCAN_RTOL = 1e-8
 FD_STEP = 1e-3  # m/s
 COLD_EVERY = 10
 REF_FILE = os.path.join(HERE, "global_references.json")
-SCANNER_VERSION = "scan-2"
+SCANNER_VERSION = "scan-3"  # 3: perilune inside the lunar sphere (global_cases)
 
 
 class EpochShooter:
