@@ -50,7 +50,7 @@ import pandas as pd
 
 from . import __version__
 from .constants import CAUTION, SECONDS_PER_DAY
-from .executors import atomic_json, make_executor
+from .executors import Processes, atomic_json, make_executor
 from .plan import Plan
 from .export.manifest import write_folder_manifest
 from .export.run import refuse_existing, staged_folder
@@ -211,11 +211,21 @@ def _record(plan: Plan, problem: Problem, burn_index: int, wall: float, cpu: flo
 
 
 def _solve_task(problem: Problem, warm: dict | None, model, max_iter: int, burn_index: int, cell: bool = True,
-                fallback: bool = True):
+                fallback: bool = True, threads: int | None = None):
     """Solve one cell (runs in a worker).  Returns (record dict, warm dict or None).
 
     ``model=None`` lets ``solve`` build its own (and run the problem's model continuation);
-    ``cell=False`` solves at the solver's full tolerance (the reference)."""
+    ``cell=False`` solves at the solver's full tolerance (the reference); ``threads``: threads of
+    the transcription's segment maps (None: its default)."""
+    from contextlib import nullcontext
+
+    from .transcription import map_threads
+
+    with map_threads(threads) if threads is not None else nullcontext():
+        return _solve_cell(problem, warm, model, max_iter, burn_index, cell, fallback)
+
+
+def _solve_cell(problem, warm, model, max_iter, burn_index, cell, fallback):
     from .solver import solve  # CasADi is loaded in the worker, not at import of this module
 
     t0, c0 = time.perf_counter(), time.process_time()
@@ -260,22 +270,17 @@ def _interned(model):
     return _MODELS.setdefault(key, model)
 
 
-def _worker_threads(threads: int) -> None:
-    """Pool initializer: threads per CasADi map in this worker (workers x threads = cores)."""
-    from . import transcription
-
-    transcription.MAP_THREADS = max(1, int(threads))
-
-
 def _warm_of(plan: Plan) -> dict:
     return {**plan.warm, "model": plan.model.get("name")}
 
 
 def _executor(workers, scheduler):
-    """Dask, local processes (the cores shared out: a worker's CasADi map gets cores // workers
-    threads) or this process (:mod:`optimizer.executors`)."""
-    return make_executor(workers if workers is None else int(workers), scheduler, SweepSpecError,
-                         lambda n: (_worker_threads, (max(1, (os.cpu_count() or 1) // n),)))
+    """Dask, local processes or this process (:mod:`optimizer.executors`), and the threads each
+    task's CasADi maps get: local processes share the cores out (cores // workers), else None
+    (the transcription's default)."""
+    ex = make_executor(workers if workers is None else int(workers), scheduler, SweepSpecError)
+    threads = max(1, (os.cpu_count() or 1) // ex.workers) if isinstance(ex, Processes) else None
+    return ex, threads
 
 
 # ------------------------------------------------------------------------------------------------
@@ -488,7 +493,7 @@ def sweep(problem: Problem, burn_epochs, arrival_epochs=None, *, return_duration
         entry = store.load(_label(*key))
         if entry is not None:
             results[key] = entry
-    ex = _executor(workers, scheduler)
+    ex, threads = _executor(workers, scheduler)
     try:
         # first pass: along the continuation tree
         children = {}
@@ -525,7 +530,7 @@ def sweep(problem: Problem, burn_epochs, arrival_epochs=None, *, return_duration
             # started from further away; a smaller cap (a feasible cell lost this way is retried
             # from any verified neighbour at the full cap)
             cap = max_iter if par is None or results[par]["warm"] is not None else _far_cap(max_iter)
-            fut = ex.submit(_solve_task, problems[key], warm, model, cap, burn_index, True, cap == max_iter)
+            fut = ex.submit(_solve_task, problems[key], warm, model, cap, burn_index, True, cap == max_iter, threads)
             pending[fut] = (key, src)
 
         report("solve", len(results), len(problems), "")
@@ -543,7 +548,7 @@ def sweep(problem: Problem, burn_epochs, arrival_epochs=None, *, return_duration
 
         # retry rounds: failed cells with a verified neighbour they did not start from
         if retry:
-            _retry_rounds(problems, results, ex, store, model, max_iter, burn_index, say, t_start)
+            _retry_rounds(problems, results, ex, threads, store, model, max_iter, burn_index, say, t_start)
     finally:
         ex.close()
 
@@ -597,7 +602,7 @@ def _neighbours(key, n_rows, n_cols):
             yield (r + dr, c + dc)
 
 
-def _retry_rounds(problems, results, ex, store, model, max_iter, burn_index, say, t_start):
+def _retry_rounds(problems, results, ex, threads, store, model, max_iter, burn_index, say, t_start):
     n_rows = 1 + max(r for r, _ in problems)
     n_cols = 1 + max(c for _, c in problems)
     rnd = 0
@@ -621,7 +626,8 @@ def _retry_rounds(problems, results, ex, store, model, max_iter, burn_index, say
             if results[key].get("retry"):  # resumed: this round's retry is already saved
                 done += 1
                 continue
-            fut = ex.submit(_solve_task, problems[key], state[src]["warm"], model, max_iter, burn_index)
+            fut = ex.submit(_solve_task, problems[key], state[src]["warm"], model, max_iter, burn_index, True, True,
+                            threads)
             pending[fut] = (key, src)
         while pending:
             for fut, (rec, warm) in ex.wait_one(list(pending)):
