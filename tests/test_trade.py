@@ -27,6 +27,8 @@ from optimizer.problem import BurnSpec, LunarPass, ModelSpec, Problem, ReturnSpe
 from optimizer.propagate import propagate
 from optimizer.timescales import parse_epoch
 from optimizer import trade
+from optimizer.export.trade_folder import write_trade_folder
+from optimizer.problem_file import load_sweep_file
 
 DAY = 86400.0
 T_PERI = parse_epoch("2027-05-13T12:00:00 TDB")
@@ -247,10 +249,10 @@ def test_best_plan_reproduces_the_cheapest_cell(case, swept):
     assert plan.burns[0].epoch == pytest.approx(best["burn_epoch_tdb_s"], abs=1e-3)
 
 
-def test_write_sweep_folder(swept, case, tmp_path):
+def test_write_trade_folder(swept, case, tmp_path):
     problem = case[0]
     df, _, _ = swept
-    out = trade.write_sweep(df, tmp_path / "trade", problem=problem)
+    out = write_trade_folder(df, tmp_path / "trade", problem=problem)
     names = sorted(p.name for p in out.iterdir())
     assert names == sorted(["trade.csv", "trade.parquet", "pareto.csv", "trade-map.png", "trade-abort.png",
                             "trade-pareto.png", "trade-report.md", "manifest.json"])
@@ -276,8 +278,8 @@ def test_write_sweep_folder(swept, case, tmp_path):
     for name in ("trade-map.png", "trade-abort.png", "trade-pareto.png"):
         assert CAUTION in Image.open(out / name).info["Description"]
     with pytest.raises(FileExistsError):
-        trade.write_sweep(df, out)
-    trade.write_sweep(df, out, force=True)
+        write_trade_folder(df, out)
+    write_trade_folder(df, out, force=True)
 
 
 def test_duration_axis_is_a_relaxation(case, tmp_path):
@@ -384,25 +386,25 @@ def test_problem_file_with_a_sweep_table(tmp_path):
     from pathlib import Path
 
     shipped = (Path(__file__).resolve().parent.parent / "problems" / "demo-trade.toml").read_text()
-    shipped_problem, shipped_spec = trade.load_sweep_file(Path(__file__).resolve().parent.parent / "problems"
+    shipped_problem, shipped_spec = load_sweep_file(Path(__file__).resolve().parent.parent / "problems"
                                                           / "demo-trade.toml")
     assert len(shipped_spec.burn_epochs) == 12 and len(shipped_spec.arrival_epochs) == 12  # the 12 x 12 demo grid
     text = shipped.split("\n[sweep]")[0]  # the same file without its own [sweep] table
     good = tmp_path / "trade.toml"
     good.write_text(text + '\n[sweep]\nburn_epochs = { start = "2027-05-11T22:00:00 TDB", '
                     'stop = "2027-05-12T06:00:00 TDB", count = 5 }\nreturn_durations_days = [4.0, 5.0]\n')
-    problem, spec = trade.load_sweep_file(good)
+    problem, spec = load_sweep_file(good)
     assert problem.name == "demo-trade" and len(spec.burn_epochs) == 5 and spec.return_durations_days == (4.0, 5.0)
     assert spec.burn_epochs[1] - spec.burn_epochs[0] == 2 * 3600.0
     bad = tmp_path / "bad.toml"
     bad.write_text(text + '\n[sweep]\nburn_epoch = ["2027-05-11T22:00:00 TDB"]\nreturn_durations_days = [4.0]\n')
     with pytest.raises(trade.SweepSpecError, match=r"bad.toml: \[sweep\]\.burn_epoch: unknown key; did you mean "
                                                     r"'burn_epochs'\?"):
-        trade.load_sweep_file(bad)
+        load_sweep_file(bad)
     none = tmp_path / "none.toml"
     none.write_text(text)
     with pytest.raises(trade.SweepSpecError, match=r"none.toml: \[sweep\]: missing"):
-        trade.load_sweep_file(none)
+        load_sweep_file(none)
     from optimizer.problem_file import ProblemError
 
     assert issubclass(trade.SweepSpecError, ProblemError)  # the command line reports it like any file error
