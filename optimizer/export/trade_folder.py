@@ -48,7 +48,8 @@ def run_sweep_file(path, out_dir, *, workers=None, scheduler=None, resume_dir=No
     output folder that exists (without ``force``), lies under a file or cannot be written raises
     ``FileExistsError`` or :class:`~optimizer.export.run.OutputPathError`, all before anything is
     solved.  Every solved cell is kept in a resume store as it finishes: ``resume_dir``, or a
-    temporary folder removed once the trade folder is written.  If the trade folder cannot be
+    temporary folder removed once the trade folder is written (or when the sweep stops on an
+    error or Ctrl-C: nothing is left behind then).  If the trade folder cannot be
     written at the end, :class:`TradeFolderError` names the folder and where the cells are kept
     (rerun with that resume folder to write it without solving again); nothing is left half-written.
     """
@@ -60,9 +61,14 @@ def run_sweep_file(path, out_dir, *, workers=None, scheduler=None, resume_dir=No
     refuse_existing(out, force)  # exists, is a file, lies under a file or cannot be written: before solving
     own = resume_dir is None
     store = Path(tempfile.mkdtemp(prefix=f"slingback-{problem.name}-sweep-")) if own else Path(resume_dir)
-    df = sweep(problem, s.burn_epochs, s.arrival_epochs, return_durations_days=s.return_durations_days,
-               arrival_tolerance_s=s.arrival_tolerance_s, burn_index=s.burn_index, max_iter=s.max_iter,
-               retry=s.retry, workers=workers, scheduler=scheduler, resume_dir=store, progress=progress)
+    try:
+        df = sweep(problem, s.burn_epochs, s.arrival_epochs, return_durations_days=s.return_durations_days,
+                   arrival_tolerance_s=s.arrival_tolerance_s, burn_index=s.burn_index, max_iter=s.max_iter,
+                   retry=s.retry, workers=workers, scheduler=scheduler, resume_dir=store, progress=progress)
+    except BaseException:  # interrupted or refused: a temporary store goes (the user's own stays)
+        if own:
+            shutil.rmtree(store, ignore_errors=True)
+        raise
     try:
         folder = write_trade_folder(df, out, problem=problem, force=force)
     except (OSError, OutputPathError) as exc:
