@@ -310,6 +310,9 @@ def _CellShooting(model, cp, base):
             if ret.max_duration_days is not None:
                 self.hi = min(self.hi, cp.start_epoch + ret.max_duration_days * DAY)
             self._epochs = {}
+            # propagate a day past the cell's latest arrival: with an exact arrival the span would
+            # end at the very epoch of the entry, and a path a second late would find none
+            self.t_end = max(self.t_end, self.hi if np.isfinite(self.hi) else self.t_end) + DAY
 
         def simulate(self, x):
             """The baseline's (perilune altitude, entry flight-path angle, inclination), and the
