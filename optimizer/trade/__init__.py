@@ -2,13 +2,12 @@
 
 The wing, one module per job (each module's docstring says what it may import):
 
-========== ==========================================================================
-``spec``     the one validator of a ``[sweep]`` table and of a grid (no pandas; the file layer uses it)
-``cells``    cell problems, the solve of one cell, the warm-start tree, which cells are retried
-``store``    the resume store (also used by the dispersion runs)
-``schedule`` the sweep driver: :func:`sweep`, :func:`sweep_from_spec`, progress, the table
-``front``    the Pareto set (:func:`pareto`) and :func:`best_plan`
-========== ==========================================================================
+- ``spec``: the one validator of a ``[sweep]`` table and of a grid (no pandas; the file layer uses it);
+- ``cells``: cell problems, the solve of one cell, the warm-start tree, which cells are retried;
+- ``store``: the resume store (also used by the dispersion runs);
+- ``schedule``: the sweep driver: :func:`sweep`, :func:`sweep_from_spec`, progress, the table;
+- ``front``: the Pareto set (:func:`pareto`) and :func:`best_plan` (not named ``pareto``: a submodule
+  of that name would hide the function on the package).
 
 The trade folder (CSV, report, figures) is written by :mod:`optimizer.export.trade_folder`; a
 problem file with its ``[sweep]`` table is read by :func:`optimizer.problem_file.load_sweep_file`.
