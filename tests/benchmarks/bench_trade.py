@@ -275,7 +275,7 @@ def _peer_check(problem, model, df, n, burn_index, trade):
         sweep_dv = row["total_dv_mps"] if row["verified"] else float("nan")
         diff = res.dv_mps - sweep_dv if feasible and row["verified"] else float("nan")
         print(f"  {row['cell']:7s} {row['status']:>10s} {sweep_dv:10.3f} {'feasible' if feasible else 'no':>9s} "
-              f"{res.dv_mps if feasible else float('nan'):10.3f} {diff:+9.3f} {wall:6.0f}s  {res.iterations}, "
+              f"{res.dv_mps if feasible else float('nan'):10.3f} {diff:+9.1e} {wall:6.0f}s  {res.iterations}, "
               f"{res.propagations}, {res.message}", flush=True)
         if feasible and not row["verified"]:
             missed.append(row["cell"])
@@ -285,7 +285,7 @@ def _peer_check(problem, model, df, n, burn_index, trade):
             agree.append(abs(diff))
     checked_ok = sum(1 for r in cells if r["verified"])
     print(f"  verified cells checked {checked_ok}: SLSQP feasible and not cheaper (by > 0.01 m/s) on "
-          f"{len(agree)}" + (f", largest |difference| {max(agree):.4f} m/s" if agree else "")
+          f"{len(agree)}" + (f", largest |difference| {max(agree):.2e} m/s" if agree else "")
           + (f"; SLSQP CHEAPER on {', '.join(cheaper)} (the sweep's optimum is not the best there)" if cheaper
              else ""))
     feasible = len(ok) + len(missed)
