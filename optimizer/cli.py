@@ -260,7 +260,9 @@ def cmd_validate(args) -> int:
 
 
 def cmd_sweep(args) -> int:
-    from .trade import load_sweep_file, progress_text, run_sweep_file
+    from .export.trade_folder import run_sweep_file
+    from .problem_file import load_sweep_file
+    from .trade import progress_text
 
     problem, _ = load_sweep_file(args.file)  # bad input stops here, before anything is solved
     out = Path(args.out) if args.out else Path("outputs") / f"{problem.name}-trade"

@@ -42,6 +42,7 @@ class Processes:
     ``initializer(*initargs)`` runs once in each worker."""
 
     def __init__(self, workers, initializer=None, initargs=()):
+        self.workers = workers
         self.pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
                                            initializer=initializer, initargs=initargs)
 

@@ -13,23 +13,22 @@ never silently fall back to a default.
 
 from __future__ import annotations
 
-import difflib
 import math
 import re
-import tomllib
 from dataclasses import replace
-from pathlib import Path
 
 import tomli_w
 
 from .constants import ENTRY_INTERFACE_ALT, GM_EARTH, R_EARTH
 from .frames import kepler_to_cartesian
+from .inputs import EPHEMERIS_SPAN, MAX_DEPTH, ProblemError, did_you_mean, read_toml
+from .inputs import show as _show
 from .models.factory import MODEL_KINDS
 from .problem import (BurnSpec, LunarPass, Mesh, ModelSpec, Objective, ParkingStart, Problem,
                       Propulsion, ReturnSpec, StateStart, Tolerances)
 from .timescales import format_epoch, parse_epoch
 
-__all__ = ["ProblemError", "load_problem", "problem_from_dict", "problem_to_dict", "dumps_toml",
+__all__ = ["ProblemError", "load_problem", "load_sweep_file", "problem_from_dict", "problem_to_dict", "dumps_toml",
            "describe_problem", "MODEL_DESCRIPTIONS"]
 
 #: One line per model kind, for ``slingback models`` and the docs.
@@ -42,7 +41,7 @@ MODEL_DESCRIPTIONS = {
 
 SECTIONS = ("case", "spacecraft", "model", "start", "burn", "lunar", "return", "objective", "tolerances",
             "mesh", "limits", "sweep", "dispersion")
-#: Sections read by another layer: a ``[sweep]`` table is checked by :mod:`optimizer.trade`, a
+#: Sections read by another layer: a ``[sweep]`` table is checked by :mod:`optimizer.trade.spec`, a
 #: ``[dispersion]`` table (the error model) by :mod:`optimizer.dispersion.errors`.
 OTHER_LAYERS = ("sweep", "dispersion")
 #: The keys each table may hold (checked first, so a typo is reported as a typo).
@@ -64,21 +63,13 @@ KEYS = {
     "mesh": ("segments", "steps", "max_refinements"),
     "limits": ("min_burn_spacing_hours", "min_altitude_km"),
 }
-#: Epochs the "ephemeris" model can serve (DE421's nominal span, 1900-2050).
-EPHEMERIS_SPAN = (parse_epoch("1900-01-01T00:00:00"), parse_epoch("2050-01-01T00:00:00"))
 #: Upper limits of the verification tolerances (``[tolerances]``): a looser tolerance would make
 #: "verified" meaningless.  Documented in docs/problem-format.md.
 TOLERANCE_LIMITS = {"entry_position_km": 100.0, "flight_path_deg": 0.5, "perilune_altitude_km": 100.0,
                     "perigee_altitude_km": 100.0}
-#: Deepest nesting of tables and arrays a problem file may have (the schema needs 3).
-MAX_DEPTH = 8
 _CONTROL_RE = re.compile(r"[\x00-\x1f\x7f]")
 _NAME_RE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")
 _REQUIRED = object()
-
-
-class ProblemError(ValueError):
-    """A problem file (or dict) that cannot be used; the message names file, key and expectation."""
 
 
 # ------------------------------------------------------------------------------------------------
@@ -103,26 +94,10 @@ def load_problem(path) -> Problem:
         schema.
     """
     source = str(path)
-    try:
-        text = Path(path).read_bytes().decode("utf-8")
-    except OSError as exc:
-        raise ProblemError(f"{source}: cannot read the file ({exc.strerror or exc})") from None
-    except UnicodeDecodeError:
-        raise ProblemError(f"{source}: not a UTF-8 text file") from None
-    try:
-        data = tomllib.loads(text)
-    except ValueError as exc:  # tomllib: an integer past Python's digit limit
-        if isinstance(exc, tomllib.TOMLDecodeError):
-            message = str(exc).replace("(at end of document)",
-                                       f"(at the end of the file, line {len(text.splitlines()) or 1})")
-            raise ProblemError(f"{source}: invalid TOML: {message}") from None
-        raise ProblemError(f"{source}: invalid TOML: {exc}") from None
-    except RecursionError:
-        raise ProblemError(f"{source}: arrays or tables nested too deeply to read (a problem file needs "
-                           f"at most {MAX_DEPTH} levels)") from None
+    data = read_toml(path)
     problem = problem_from_dict(data, source=source)
     if "sweep" in data:  # checked at the door too, though only a trade study uses it
-        from .trade import parse_sweep_spec
+        from .trade.spec import parse_sweep_spec  # the validator alone: no trade engine, pandas or plots
 
         parse_sweep_spec(data["sweep"], problem, source)
     if "dispersion" in data:  # the error model, checked at the door too
@@ -130,6 +105,28 @@ def load_problem(path) -> Problem:
 
         error_model_from_table(data["dispersion"], source)
     return problem
+
+
+def load_sweep_file(path):
+    """Read a problem file that carries a ``[sweep]`` table: ``(problem, SweepSpec)``, the problem
+    being the file without that table.
+
+    Raises
+    ------
+    ProblemError
+        (:class:`optimizer.trade.spec.SweepSpecError` for the ``[sweep]`` table) naming the file
+        and key, for every mistake in the file, and when the table is missing.
+    """
+    from .trade.spec import SweepSpecError, parse_sweep_spec
+
+    source = str(path)
+    data = read_toml(path)
+    spec = data.pop("sweep", None)
+    if spec is None:
+        raise SweepSpecError(f"{source}: [sweep]: missing; a trade study needs a [sweep] table "
+                             "(see docs/sweep-format.md)")
+    problem = problem_from_dict(data, source=source)
+    return problem, parse_sweep_spec(spec, problem, source)
 
 
 def problem_from_dict(d: dict, source: str = "<dict>") -> Problem:
@@ -443,8 +440,7 @@ class _Table:
         return ProblemError(f"{self.where(key)}: expected {expected}, got {_show(got)}")
 
     def error_unknown(self, key, known, section=False) -> ProblemError:
-        near = difflib.get_close_matches(str(key)[:100], known, n=1)
-        hint = f"; did you mean {near[0]!r}?" if near else f"; expected one of {', '.join(known)}"
+        hint = did_you_mean(key, known)
         kind = "unknown section" if section else "unknown key"
         return ProblemError(f"{self.where(key)}: {kind}{hint}")
 
@@ -574,14 +570,6 @@ def _range_text(what, lo, hi, lo_open=False):
 
 def _num(x: float) -> str:
     return f"{x:,.0f}" if x == int(x) and abs(x) >= 1e4 else f"{x:g}"
-
-
-def _show(x) -> str:
-    try:
-        text = repr(x)
-    except (ValueError, RecursionError):  # an integer past Python's digit limit; nesting
-        text = f"a {type(x).__name__} too large to show"
-    return text if len(text) <= 80 else text[:77] + "..."
 
 
 def describe_problem(problem: Problem) -> str:

@@ -33,6 +33,8 @@ so one built transcription can be re-solved with other windows (trade studies) w
 from __future__ import annotations
 
 import math
+from contextlib import contextmanager
+from contextvars import ContextVar
 from dataclasses import dataclass
 
 import casadi as ca
@@ -49,7 +51,20 @@ _RK_B = np.asarray(_dop853.B)
 
 DAY = 86400.0
 #: How segments of a coast are evaluated: CasADi map over threads (two cores on the reference machine).
+#: The default thread count; a transcription takes its own (``threads=``, or :func:`map_threads`).
 MAP_MODE, MAP_THREADS = "thread", 2
+_THREADS = ContextVar("slingback_map_threads", default=None)
+
+
+@contextmanager
+def map_threads(threads: int):
+    """Transcriptions built inside this block (in this thread or task) map their segments over
+    ``threads`` threads unless given ``threads=`` themselves; nothing global is changed."""
+    token = _THREADS.set(max(1, int(threads)))
+    try:
+        yield
+    finally:
+        _THREADS.reset(token)
 
 
 @dataclass(frozen=True)
@@ -141,8 +156,10 @@ class Transcription:
         Segments per phase.
     """
 
-    def __init__(self, problem, model, steps, segments):
+    def __init__(self, problem, model, steps, segments, threads: int | None = None):
         self.problem, self.model = problem, model
+        #: threads of each mapped segment evaluation (``threads``, else :func:`map_threads`, else MAP_THREADS)
+        self.threads = max(1, int(threads if threads is not None else (_THREADS.get() or MAP_THREADS)))
         self.phases = phase_layout(problem)
         self.steps = [int(m) for m in steps]
         self.segments = int(segments)
@@ -222,7 +239,7 @@ class Transcription:
         """The segment function of ``steps`` mapped over a coast's segments (one per step count)."""
         key = ("map", steps)
         if key not in self._segments:
-            self._segments[key] = self.segment_function(steps).map(self.segments, MAP_MODE, MAP_THREADS)
+            self._segments[key] = self.segment_function(steps).map(self.segments, MAP_MODE, self.threads)
         return self._segments[key]
 
     # -- building blocks -----------------------------------------------------------------------
@@ -423,8 +440,8 @@ class Transcription:
             jac = ca.Function(f"segment{steps}_jac", [z, h], [end, ca.jacobian(end, zh)])
             hess = ca.Function(f"segment{steps}_hess", [z, h, mu],
                                [ca.triu(ca.hessian(ca.dot(mu, end), zh)[0])])
-            self._segments[key] = (jac.map(self.segments, MAP_MODE, MAP_THREADS),
-                                   hess.map(self.segments, MAP_MODE, MAP_THREADS))
+            self._segments[key] = (jac.map(self.segments, MAP_MODE, self.threads),
+                                   hess.map(self.segments, MAP_MODE, self.threads))
         return self._segments[key]
 
     def _x_index(self, k: int, a: int, seg: int) -> int:

@@ -1,28 +1,26 @@
 """Monte Carlo dispersion: many perturbed executions of a verified plan, in parallel and resumable.
 
 Samples are evaluated in chunks of :data:`CHUNK` consecutive indices (one task each) on an
-in-process loop, a local process pool or a Dask distributed cluster (the executors follow the
-pattern of :mod:`optimizer.trade`).  A sample depends only on the seed and its index
+in-process loop, a local process pool or a Dask distributed cluster (the executors of
+:mod:`optimizer.executors`, shared with the trade studies).  A sample depends only on the seed and its index
 (:func:`optimizer.dispersion.sampling.sample_rng`), so the table is the same on 1 or K workers.
-With ``resume_dir`` every finished chunk is saved there (one JSON file, written atomically) and
-skipped by a later run of the same plan, error model and seed.
+With ``resume_dir`` every finished chunk is saved there (the resume store of
+:mod:`optimizer.trade.store`: one JSON file per chunk, written atomically) and skipped by a later
+run of the same plan, error model and seed.
 """
 
 from __future__ import annotations
 
-import hashlib
-import json
 import math
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from .. import __version__
 from ..constants import GM_EARTH, R_EARTH, R_MOON
 from ..models.factory import build_model
 from ..timescales import format_epoch
-from ..executors import atomic_json, make_executor
+from ..executors import make_executor
+from ..trade.store import ResumeStore, StoreKind
 from .errors import ErrorModelError
 from .sampling import (DISPERSION_ATOL, DISPERSION_RTOL, NUMERIC, Nominal, _factor, draw, entry_offsets, evaluate,
                        navigation_covariance_icrf, perturbed, sample_rng)
@@ -125,43 +123,15 @@ def _executor(workers, scheduler):
     return make_executor(workers, scheduler, ErrorModelError, name="--workers")
 
 
-class _Store:
-    """One JSON file per finished chunk in ``resume_dir/chunks``; ``dispersion.json`` names the run."""
+#: The resume folder of a dispersion run: ``dispersion.json`` names the run, ``chunks/<first>-<end>.json``
+#: holds the rows of one chunk of samples (the package's one resume store, :mod:`optimizer.trade.store`).
+STORE_KIND = StoreKind(head="dispersion.json", items="chunks", head_format="slingback-dispersion-resume",
+                       item_format="slingback-dispersion-chunk", option="--resume", what="dispersion run",
+                       changed="plan, error model or seed changed")
 
-    def __init__(self, folder, definition: dict):
-        self.folder = None if folder is None else Path(folder)
-        if self.folder is None:
-            return
-        self.key = hashlib.sha256(json.dumps(definition, sort_keys=True, default=str).encode()).hexdigest()
-        (self.folder / "chunks").mkdir(parents=True, exist_ok=True)
-        head = self.folder / "dispersion.json"
-        if head.exists():
-            try:
-                old = json.loads(head.read_text())
-            except (OSError, ValueError) as exc:
-                raise ErrorModelError(f"--resume: cannot read {head} ({exc})") from None
-            if old.get("fingerprint") != self.key:
-                raise ErrorModelError(f"--resume: {self.folder} holds a different dispersion run (plan, "
-                                      "error model or seed changed); use an empty folder")
-        else:
-            atomic_json(head, {"format": "slingback-dispersion-resume", "format_version": 1,
-                                "software": f"slingback {__version__}", "fingerprint": self.key,
-                                "definition": definition})
 
-    def load(self, start, stop):
-        if self.folder is None:
-            return None
-        p = self.folder / "chunks" / f"{start:07d}-{stop:07d}.json"
-        try:
-            d = json.loads(p.read_text())
-        except (OSError, ValueError):
-            return None
-        return d["rows"] if d.get("fingerprint") == self.key else None
-
-    def save(self, start, stop, rows):
-        if self.folder is not None:
-            atomic_json(self.folder / "chunks" / f"{start:07d}-{stop:07d}.json",
-                         {"fingerprint": self.key, "rows": rows})
+def _chunk_name(start: int, stop: int) -> str:
+    return f"{start:07d}-{stop:07d}"
 
 
 def run_samples(model, nominal: Nominal, errors, samples: int, seed: int, *, workers=None, scheduler=None,
@@ -192,13 +162,13 @@ def run_samples(model, nominal: Nominal, errors, samples: int, seed: int, *, wor
     nominal_entry = _nominal_entry(model, nominal)
     definition = {"nominal": repr(nominal), "errors": errors.to_table(), "seed": seed, "chunk": chunk,
                   "rtol": DISPERSION_RTOL, "atol": DISPERSION_ATOL, "model": model.describe()}
-    store = _Store(resume_dir, definition)
+    store = ResumeStore(resume_dir, definition, STORE_KIND, ErrorModelError)
     chunks = [(a, min(a + chunk, samples)) for a in range(0, samples, chunk)]
     results, todo = {}, []
     for c in chunks:
-        rows = store.load(*c)
-        if rows is not None:
-            results[c] = rows
+        saved = store.load(_chunk_name(*c))
+        if saved is not None:
+            results[c] = saved["rows"]
         else:
             todo.append(c)
     done = sum(b - a for a, b in results)
@@ -214,7 +184,7 @@ def run_samples(model, nominal: Nominal, errors, samples: int, seed: int, *, wor
                 for fut, rows in ex.wait_one(pending):
                     c = pending.pop(fut)
                     results[c] = rows
-                    store.save(*c, rows)
+                    store.save(_chunk_name(*c), {"rows": rows})
                     done += c[1] - c[0]
                     if progress:
                         progress(done, samples)
