@@ -6,10 +6,10 @@ mission's own independent verification and licensed practice.
 
 __version__ = "0.1.0"
 
+# ``optimizer.solve`` is both the solve wing (a package) and its entry point.  Importing a
+# subpackage sets the parent's attribute only the first time it is imported, so importing it here,
+# before anything else can, leaves ``optimizer.solve`` bound to the function for good.  The wing's
+# __init__ loads no CasADi: the propagator and models stay usable without it.
+from .solve import solve  # noqa: E402
 
-def solve(problem, **kwargs):
-    """Design the plan of ``problem``; see :func:`optimizer.solver.solve` (imported lazily, so that
-    the propagator and models can be used without loading CasADi)."""
-    from .solver import solve as _solve
-
-    return _solve(problem, **kwargs)
+__all__ = ["solve", "__version__"]

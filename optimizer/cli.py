@@ -137,7 +137,7 @@ def _solve_into(problem, out: Path, force: bool, args) -> int:
     from .export.run import refuse_existing, save_rescued_plan
 
     refuse_existing(out, force)  # exists, is a file, lies under a file or cannot be written: before solving
-    from .solver import SolveError, solve
+    from .solve import SolveError, solve
 
     progress = _progress(args)
     if progress:

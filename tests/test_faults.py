@@ -40,7 +40,7 @@ def solver(case, monkeypatch):
         calls.append(p)
         return plan
 
-    monkeypatch.setitem(sys.modules, "optimizer.solver",
+    monkeypatch.setitem(sys.modules, "optimizer.solve",
                         types.SimpleNamespace(solve=solve, SolveError=type("SolveError", (ValueError,), {})))
     return calls
 

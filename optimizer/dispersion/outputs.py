@@ -89,7 +89,7 @@ def _margin_solve(problem, margin: dict, plan, progress, errors) -> dict:
     if not margin["fits"]:
         return {**out, "status": "not solved",
                 "reason": "the corridor is narrower than twice the needed margin"}, None
-    from ..solver import SolveError, solve
+    from ..solve import SolveError, solve
 
     tight = replace(problem, arrival=replace(problem.arrival, flight_path_margin_deg=m))
     if progress:

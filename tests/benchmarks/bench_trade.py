@@ -89,7 +89,7 @@ def main():
 
     from optimizer import solve, trade
     from optimizer.models import build_model
-    from optimizer.solver import model_span
+    from optimizer.solve.guess import model_span
     from optimizer.timescales import format_epoch
 
     cores = os.cpu_count()
