@@ -299,7 +299,7 @@ def stub_solver(case, monkeypatch):
     problem, model, plan = case
     seen = {}
 
-    def solve(p, *, warm=None, progress=None):
+    def solve(p, *, warm=None, progress=None, **_):
         seen["problem"] = p
         if progress:
             progress("stub solver")

@@ -36,7 +36,7 @@ def solver(case, monkeypatch):
     _, _, plan = case
     calls = []
 
-    def solve(p, *, warm=None, progress=None):
+    def solve(p, *, warm=None, progress=None, **_):
         calls.append(p)
         return plan
 

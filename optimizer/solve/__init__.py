@@ -12,7 +12,8 @@ models, ephemeris, propagate, events, judge, verify, transcription, compiled):
 * ``strategy``: the chain (search or guess, NLP, verification, refinement, pruning, staging,
   continuation) behind :func:`solve`.
 
-The wing never imports the file formats, the trade engine, export or the CLI.  Importing this
+The wing never imports the file formats, the trade engine, export or the CLI (the form of the
+problem a plan carries is passed in: ``problem_table``).  Importing this
 package loads no CasADi: :func:`solve` and the names below are looked up in their modules when
 first used, so the propagator, seeds and search stay usable without it.
 
@@ -29,7 +30,7 @@ from .base import SolveError
 
 #: Public names defined in the wing's modules (loaded on first use).
 _LAZY = {"NLPCache": "ipopt", "IPOPT_OPTIONS": "ipopt", "initial_guess": "guess", "model_span": "guess",
-         "primer_scan": "primer", "problem_dict": "strategy"}
+         "primer_scan": "primer"}
 
 
 def solve(problem, **kwargs):

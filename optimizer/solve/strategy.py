@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import replace
-from typing import NamedTuple
+from typing import Callable, NamedTuple
 
 import casadi as ca
 import numpy as np
@@ -45,6 +45,15 @@ SEGMENT_TOL_KM = 1e-3
 PRUNE_MPS = 0.1
 
 
+class _Run(NamedTuple):
+    """What every step of one solve shares: where progress lines go, the caller's extra IPOPT
+    options, and the form of the problem a plan carries."""
+
+    say: Callable[[str], None]
+    ipopt_options: dict | None
+    problem_table: Callable[[Problem], dict]
+
+
 class Solved(NamedTuple):
     """What each step of the chain returns: the plan, and the transcription whose variables its
     warm-start point (``plan.warm["x"]``) holds, for the primer test of a staged solve."""
@@ -54,7 +63,7 @@ class Solved(NamedTuple):
 
 
 def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=None,
-          ipopt_options: dict | None = None, cache=None) -> Plan:
+          ipopt_options: dict | None = None, cache=None, problem_table=None) -> Plan:
     """Minimum-Δv (or other objective) free return for ``problem``, verified independently.
 
     Parameters
@@ -71,6 +80,11 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
     cache : NLPCache or False, optional
         Built solvers to reuse (default: one cache per thread, kept between calls); ``False``
         builds every solver afresh.
+    problem_table : callable(Problem) -> dict, optional
+        The form of the problem each plan carries (``plan.problem``).  The layers above pass the
+        problem file's table form (:func:`optimizer.problem_file.problem_to_dict`; the library's
+        ``optimizer.solve`` does); the wing itself never imports the file layer, so by default
+        it stores :meth:`Problem.to_dict`.
 
     Returns
     -------
@@ -78,25 +92,25 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
         ``status`` is ``"verified"``, ``"unverified"``, ``"infeasible"`` or ``"failed"``.
     """
     return solve_with_transcription(problem, warm=warm, progress=progress, model=model,
-                                    ipopt_options=ipopt_options, cache=cache).plan
+                                    ipopt_options=ipopt_options, cache=cache, problem_table=problem_table).plan
 
 
 def solve_with_transcription(problem: Problem, *, warm: Plan | None = None, progress=None, model=None,
-                             ipopt_options: dict | None = None, cache=None) -> Solved:
+                             ipopt_options: dict | None = None, cache=None, problem_table=None) -> Solved:
     """:func:`solve`, returning the plan with the transcription its warm-start point belongs to."""
-    say = progress or (lambda msg: None)
+    run = _Run(progress or (lambda msg: None), ipopt_options, problem_table or Problem.to_dict)
     if cache is None:
-        return _design(problem, warm, model, say, ipopt_options)
+        return _design(problem, warm, model, run)
     stack = active_caches()
     stack.append(cache)
     try:
-        return _design(problem, warm, model, say, ipopt_options)
+        return _design(problem, warm, model, run)
     finally:
         stack.pop()
 
 
 # -- the chain: each step returns Solved, none re-enters solve() ----------------------------------
-def _design(problem, warm, model, say, ipopt_options) -> Solved:
+def _design(problem, warm, model, run) -> Solved:
     """The whole strategy: model continuation when asked (cold only), the staged solve of several
     burns (cold only), else one solve of the whole layout (:func:`_one_layout`)."""
     t_start = time.perf_counter()
@@ -108,29 +122,29 @@ def _design(problem, warm, model, say, ipopt_options) -> Solved:
             # (measured, problems/demo-injection.toml: 300 + 300 + 137 iterations in the
             # ephemeris stage, where the one-burn layout's own continuation needs 3x fewer)
             model = build_model(problem.model, *model_span(problem))
-            return _staged(problem, model, say, ipopt_options, stages, t_start, continued=True)
-        warm, stages = _continuation(problem, say, ipopt_options)
+            return _staged(problem, model, run, stages, t_start, continued=True)
+        warm, stages = _continuation(problem, run)
     if model is None:
         model = build_model(problem.model, *model_span(problem))
     if warm is None and held_burns(problem):
-        return _staged(problem, model, say, ipopt_options, stages, t_start)
-    return _one_layout(problem, model, warm, say, ipopt_options, stages, t_start)
+        return _staged(problem, model, run, stages, t_start)
+    return _one_layout(problem, model, warm, run, stages, t_start)
 
 
-def _whole_layout(problem, model, say, ipopt_options) -> Solved:
+def _whole_layout(problem, model, run) -> Solved:
     """A cold solve of every burn of ``problem`` together, never staged (a stage of
     :func:`_staged`, or its fallback); with model continuation when the problem asks for it and no
     model is given."""
     t_start = time.perf_counter()
     warm, stages = None, []
     if problem.model.continuation and model is None:
-        warm, stages = _continuation(problem, say, ipopt_options)
+        warm, stages = _continuation(problem, run)
     if model is None:
         model = build_model(problem.model, *model_span(problem))
-    return _one_layout(problem, model, warm, say, ipopt_options, stages, t_start)
+    return _one_layout(problem, model, warm, run, stages, t_start)
 
 
-def _one_layout(problem, model, warm, say, ipopt_options, stages, t_start) -> Solved:
+def _one_layout(problem, model, warm, run, stages, t_start) -> Solved:
     """One layout from one starting point: the warm plan's variables; for a free-direction
     injection, the answer with the injection along the velocity; for a cold start from a state,
     the global layer's starts and then the targeted guess.  Then :func:`_solve_loop`."""
@@ -146,13 +160,13 @@ def _one_layout(problem, model, warm, say, ipopt_options, stages, t_start) -> So
         if warm.model.get("name") == problem.model.kind and len(warm.warm.get("lam_x", [])) == x0.size:
             # same physics: multipliers carry over too
             lam = (np.asarray(warm.warm["lam_x"]), np.asarray(warm.warm["lam_g"]))
-        say("warm start from the given plan" + ("" if lam is not None else " (primal point only)"))
+        run.say("warm start from the given plan" + ("" if lam is not None else " (primal point only)"))
     elif is_injection(problem) and problem.burns[0].direction == "free":
         # A free-direction injection is started from the same design with the injection along the
         # velocity (measured: IPOPT diverges from the raw seed, converges from this point).
         along = replace(problem, burns=(replace(problem.burns[0], direction="along"),) + problem.burns[1:])
-        say("free-direction injection: solving with the injection along the velocity first")
-        first_solved = _design(along, None, model, say, ipopt_options)
+        run.say("free-direction injection: solving with the injection along the velocity first")
+        first_solved = _design(along, None, model, run)
         first = first_solved.plan
         if first.status not in ("verified", "unverified"):
             return first_solved
@@ -165,11 +179,11 @@ def _one_layout(problem, model, warm, say, ipopt_options, stages, t_start) -> So
         tr = Transcription(problem, model, steps, problem.mesh.segments)
         searched = record = None
         if not is_injection(problem) and problem.objective.kind in ("min-dv", "weighted"):
-            searched, record = _global_search(problem, model, tr, say, ipopt_options, stages, t_start)
+            searched, record = _global_search(problem, model, tr, run, stages, t_start)
             if searched is not None and searched.plan.verified:
                 return searched
-            say("search: no start gave a verified plan; falling back on the targeted guess")
-        say("initial guess: targeted coast")
+            run.say("search: no start gave a verified plan; falling back on the targeted guess")
+        run.say("initial guess: targeted coast")
         try:
             states, dvs, slens, start = initial_guess(problem, model, tr)
         except SolveError as exc:
@@ -179,15 +193,15 @@ def _one_layout(problem, model, warm, say, ipopt_options, stages, t_start) -> So
                 raise SolveError(f"{exc}; {search_summary(record)}") from None
             raise
         x0 = tr.guess_vector(states, dvs, slens, start)
-        solved = _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start)
+        solved = _solve_loop(problem, model, tr, x0, lam, run, stages, t_start)
         if searched is not None or record is not None:
             solved.plan.solver["search"] = {**(record or {}), "fallback": solved.plan.status}
             _with_search_reason(solved.plan, record)
         return solved
-    return _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start)
+    return _solve_loop(problem, model, tr, x0, lam, run, stages, t_start)
 
 
-def _staged(problem, model, say, ipopt_options, stages, t_start, continued=False) -> Solved:
+def _staged(problem, model, run, stages, t_start, continued=False) -> Solved:
     """Several burns, cold: solve with one burn alone, test the others (held at zero) with the
     primer vector, then give the whole layout's answer.
 
@@ -217,17 +231,17 @@ def _staged(problem, model, say, ipopt_options, stages, t_start, continued=False
         kept = [j for j in range(len(problem.burns)) if j not in held]
         reduced = replace(problem, burns=tuple(problem.burns[j] for j in kept))
         if alone_plans and not _screen_finds_seeds(reduced, model if own is None else own):
-            say(f"burn {alone + 1} alone: no screened seed meets the ranges within its cap; not solved")
+            run.say(f"burn {alone + 1} alone: no screened seed meets the ranges within its cap; not solved")
             continue
-        say(f"several burns: solving with burn {alone + 1} alone "
+        run.say(f"several burns: solving with burn {alone + 1} alone "
             f"(burn(s) {', '.join(str(j + 1) for j in held)} held at zero)")
-        plan, tr1 = _whole_layout(reduced, own, say, ipopt_options)
-        say(f"burn {alone + 1} alone: {plan.status}, {plan.total_dv_mps:.4f} m/s")
+        plan, tr1 = _whole_layout(reduced, own, run)
+        run.say(f"burn {alone + 1} alone: {plan.status}, {plan.total_dv_mps:.4f} m/s")
         if plan.status == "verified" and tr1 is not None:
             alone_plans.append((plan, tr1, held, kept, alone))
     if not alone_plans:
-        say("no burn alone gives a verified plan; solving all burns together")
-        return _whole_layout(problem, own, say, ipopt_options)
+        run.say("no burn alone gives a verified plan; solving all burns together")
+        return _whole_layout(problem, own, run)
     first, tr1, held, kept, alone = min(alone_plans, key=lambda a: a[0].total_dv_mps)
     alone_record = [{"burn": a[4] + 1, "total_dv_mps": a[0].total_dv_mps} for a in alone_plans]
     scan = primer_scan(tr1, first.warm["x"], first.warm["lam_g"])
@@ -251,45 +265,45 @@ def _staged(problem, model, say, ipopt_options, stages, t_start, continued=False
     candidates, direct = [], None
     if helpful:
         j, (t_rel, p_max, direction) = max(helpful.items(), key=lambda kv: kv[1][1])
-        say(f"primer test: |p| = {p_max:.4f} > 1 for burn {j + 1} at {t_rel - first.start_epoch:.0f} s from "
+        run.say(f"primer test: |p| = {p_max:.4f} > 1 for burn {j + 1} at {t_rel - first.start_epoch:.0f} s from "
             "the start: a cheaper path uses it; solving all burns together")
         # measured: from the targeted cold guess the whole problem converges where a small burn
         # released along the primer from the one-burn answer stalls (|p| = 19 case of test_primer)
-        direct = _whole_layout(problem, own, say, ipopt_options)
+        direct = _whole_layout(problem, own, run)
         if direct.plan.verified and direct.plan.total_dv_mps < first.total_dv_mps:
             direct.plan.solver["primer"] = {**record, "result": f"|p| = {p_max:.4f} > 1 for burn {j + 1}; "
                                             "solved all burns together"}
             candidates.append(direct)
         else:
-            say(f"that solve ended {direct.plan.status}; releasing burn {j + 1} at the primer's peak instead")
+            run.say(f"that solve ended {direct.plan.status}; releasing burn {j + 1} at the primer's peak instead")
             trial = list(burns)
             trial[j] = (t_rel, direction * RELEASE_MPS / 1000.0)
             released = None
             try:
                 tr = Transcription(problem, model, steps, problem.mesh.segments)
                 x0 = path_guess(problem, model, tr, first.start_epoch, first.start_state, trial, start)
-                released = _solve_loop(problem, model, tr, x0, None, say, ipopt_options, stages, t_start)
+                released = _solve_loop(problem, model, tr, x0, None, run, stages, t_start)
             except SolveError as exc:
-                say(f"release: no starting point ({exc})")
+                run.say(f"release: no starting point ({exc})")
             if released is not None and released.plan.verified and released.plan.total_dv_mps < first.total_dv_mps:
                 released.plan.solver["primer"] = {**record, "result": f"burn {j + 1} released at |p| = {p_max:.4f}"}
                 candidates.append(released)
     else:
-        say("primer test: no held burn can lower the cost (max |p| "
+        run.say("primer test: no held burn can lower the cost (max |p| "
             f"{max((c[1] for c in picks.values() if c is not None), default=0.0):.4f} <= 1)")
     if not candidates or candidates[0].plan.total_dv_mps > first.total_dv_mps:
         note = ("held burns proved useless (|p| <= 1 + tol in their windows)" if not helpful else
                 "|p| > 1 for a held burn, but neither the whole solve nor the release was cheaper; held "
                 "burn(s) kept at zero (a cheaper path may exist)")
-        zero = _with_zero_burns(problem, model, first, burns, kept, steps, start)
+        zero = _with_zero_burns(problem, model, first, burns, kept, steps, start, run)
         if zero is not None:
             zero.plan.solver["primer"] = {**record, "result": note}
             candidates.append(zero)
     if not candidates:
         if direct is not None:  # the whole problem was solved already (above)
             return direct
-        say("the staged solve did not give a verified whole-layout plan; solving all burns together")
-        return _whole_layout(problem, own, say, ipopt_options)
+        run.say("the staged solve did not give a verified whole-layout plan; solving all burns together")
+        return _whole_layout(problem, own, run)
     best = min(candidates, key=lambda c: c.plan.total_dv_mps)
     best.plan.solver["stages"] = list(best.plan.solver.get("stages", [])) + [
         {"stage": "without the held burns", "status": first.status, "total_dv_mps": first.total_dv_mps,
@@ -297,14 +311,14 @@ def _staged(problem, model, say, ipopt_options, stages, t_start, continued=False
     return best
 
 
-def _continuation(problem, say, ipopt_options):
+def _continuation(problem, run):
     """Solve the problem in each cheaper model of ``problem.model.continuation`` in turn, each
     warm-starting the next; returns (the last usable plan or None, a record per stage)."""
     plan, stages = None, []
     for kind in problem.model.continuation:
         sub = replace(problem, model=replace(problem.model, kind=kind, continuation=()))
-        say(f"continuation: solving in the {kind} model first")
-        trial = _design(sub, plan, None, say, ipopt_options).plan
+        run.say(f"continuation: solving in the {kind} model first")
+        trial = _design(sub, plan, None, run).plan
         stages.append({"model": kind, "status": trial.status, "iterations": trial.solver.get("iterations"),
                        "wall_s": trial.solver.get("wall_s"), "total_dv_mps": trial.total_dv_mps})
         if trial.status in ("verified", "unverified"):
@@ -312,7 +326,7 @@ def _continuation(problem, say, ipopt_options):
     return plan, stages
 
 
-def _global_search(problem, model, tr, say, ipopt_options, stages, t_start):
+def _global_search(problem, model, tr, run, stages, t_start):
     """The global layer (:mod:`optimizer.solve.search`): screened seeds over every burn window, the most
     promising solved from their own paths.  Returns (the cheapest verified plan, else the last
     plan tried, else None, with its transcription; the search record), the record also under
@@ -322,11 +336,11 @@ def _global_search(problem, model, tr, say, ipopt_options, stages, t_start):
 
     def solve_from(burns):
         x0 = path_guess(problem, model, tr, st.epoch, np.asarray(st.state, dtype=float), burns)
-        solved = _solve_loop(problem, model, tr, x0, None, say, ipopt_options, stages, t_start)
+        solved = _solve_loop(problem, model, tr, x0, None, run, stages, t_start)
         tried.append(solved)
         return solved.plan
 
-    best, record = global_solve(problem, model, solve_from, say)
+    best, record = global_solve(problem, model, solve_from, run.say)
     found = next((t for t in tried if t.plan is best), None) if best is not None else (tried[-1] if tried else None)
     if found is not None:
         found.plan.solver["search"] = record
@@ -341,13 +355,13 @@ def _with_search_reason(plan, record):
 
 
 # -- one starting point: NLP, verification, refinement, pruning -----------------------------------
-def _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start) -> Solved:
+def _solve_loop(problem, model, tr, x0, lam, run, stages, t_start) -> Solved:
     """NLP, verification and per-coast refinement from the starting point ``x0`` of ``tr``; a
     verified plan is then pruned (:func:`_prune`)."""
     log = []
     for attempt in range(problem.mesh.max_refinements + 1):
-        say(f"NLP: {tr.v.n} variables, {tr.v.ng} constraints, steps per coast {tr.steps}")
-        sol, rec = solve_nlp(tr, x0, lam, ipopt_options)
+        run.say(f"NLP: {tr.v.n} variables, {tr.v.ng} constraints, steps per coast {tr.steps}")
+        sol, rec = solve_nlp(tr, x0, lam, run.ipopt_options)
         rec["build_and_solve_s"] = time.perf_counter() - t_start
         log.append(rec)
         tried = [(sol, rec)]
@@ -355,10 +369,10 @@ def _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start
             # A cold start that stalls, or that IPOPT declares locally infeasible, is retried: the
             # verdict is about the iterates' neighbourhood.  Measured: the return-trim-only case
             # of tests/test_primer.py is "infeasible" at weight 0.3 and 1, solved at 0.1 and 0.03.
-            if rec["success"] or lam is not None or set(retry) & set(ipopt_options or {}):
+            if rec["success"] or lam is not None or set(retry) & set(run.ipopt_options or {}):
                 break
-            say(f"IPOPT: {rec['status']} after {rec['iterations']} iterations; retrying with {label}")
-            sol, rec = solve_nlp(tr, x0, None, {**(ipopt_options or {}), **retry})
+            run.say(f"IPOPT: {rec['status']} after {rec['iterations']} iterations; retrying with {label}")
+            sol, rec = solve_nlp(tr, x0, None, {**(run.ipopt_options or {}), **retry})
             rec["retry"] = label
             rec["build_and_solve_s"] = time.perf_counter() - t_start
             log.append(rec)
@@ -368,7 +382,7 @@ def _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start
         x = np.asarray(sol["x"]).ravel()
         lam = (np.asarray(sol["lam_x"]).ravel(), np.asarray(sol["lam_g"]).ravel())
         unpacked = tr.unpack(x)
-        say(f"IPOPT: {rec['status']} after {rec['iterations']} iterations ({rec['wall_s']:.2f} s)")
+        run.say(f"IPOPT: {rec['status']} after {rec['iterations']} iterations ({rec['wall_s']:.2f} s)")
         if not rec["success"]:
             why = constraint_violations(tr, x, sol["g"])
             status = "infeasible" if "Infeasible" in rec["status"] else "failed"
@@ -377,32 +391,32 @@ def _solve_loop(problem, model, tr, x0, lam, say, ipopt_options, stages, t_start
                 reason += " (retried with " + "; ".join(f"{t[1]['retry']}: {t[1]['status']}" for t in tried[1:]) + ")"
             if why:
                 reason += "; largest constraint violations at the last iterate: " + ", ".join(why)
-            return Solved(_plan(problem, model, tr, unpacked, status, reason, None, log, x, lam, stages), tr)
+            return Solved(_plan(problem, model, tr, unpacked, status, reason, None, log, x, lam, stages, run), tr)
         claimed = _claimed_events(tr, model, unpacked)
         burns = [make_burn(t, dv, pre) for t, dv, pre in unpacked["burns"]]
         start = unpacked["start"]
         ver = verify(model, problem, start[6], start[:6], burns, claimed, claimed[-1].epoch + 3600.0)
         log[-1]["verify_s"] = time.perf_counter() - t_start - rec["build_and_solve_s"]
         if ver.passed:
-            say(f"verified: total Δv {sum(b.dv_mps for b in burns):.3f} m/s")
+            run.say(f"verified: total Δv {sum(b.dv_mps for b in burns):.3f} m/s")
             log[-1]["end_to_end_s"] = time.perf_counter() - t_start
-            plan = _plan(problem, model, tr, unpacked, "verified", "", ver, log, x, lam, stages)
-            return _prune(problem, Solved(plan, tr), model, say, ipopt_options)
-        say("verification failed: " + "; ".join(ver.violations))
+            plan = _plan(problem, model, tr, unpacked, "verified", "", ver, log, x, lam, stages, run)
+            return _prune(problem, Solved(plan, tr), model, run)
+        run.say("verification failed: " + "; ".join(ver.violations))
         if attempt == problem.mesh.max_refinements:
             break
         errs = _segment_errors(tr, model, unpacked)
         new_steps = [m * 2 if e > SEGMENT_TOL_KM else m for m, e in zip(tr.steps, errs)]
         if new_steps == tr.steps:
             new_steps = [m * 2 for m in tr.steps]
-        say(f"refining coasts (segment disagreement {', '.join(f'{e:.2g}' for e in errs)} km)")
+        run.say(f"refining coasts (segment disagreement {', '.join(f'{e:.2g}' for e in errs)} km)")
         tr = Transcription(problem, model, new_steps, problem.mesh.segments)
         x0 = x
     reason = "the re-propagated path disagrees with the optimiser: " + "; ".join(ver.violations)
-    return Solved(_plan(problem, model, tr, unpacked, "unverified", reason, ver, log, x, lam, stages), tr)
+    return Solved(_plan(problem, model, tr, unpacked, "unverified", reason, ver, log, x, lam, stages, run), tr)
 
 
-def _prune(problem, solved: Solved, model, say, ipopt_options) -> Solved:
+def _prune(problem, solved: Solved, model, run) -> Solved:
     """Re-solve with near-zero burns switched off; keep that plan when it is verified and cheaper.
 
     A burn whose optimum is zero is a degenerate point of the cone ``sigma^2 >= |dv|^2``: IPOPT
@@ -417,11 +431,11 @@ def _prune(problem, solved: Solved, model, say, ipopt_options) -> Solved:
     # the epoch of a zero burn is fixed where it is: free, its cut could slide (a degenerate direction)
     zeroed = replace(problem, burns=tuple(replace(b, max_dv_mps=0.0, window=(plan.burns[j].epoch,) * 2)
                                           if j in small else b for j, b in enumerate(problem.burns)))
-    say(f"re-solving with burn(s) {', '.join(str(j + 1) for j in small)} (under {PRUNE_MPS} m/s) fixed at zero")
-    trial = _design(zeroed, plan, model, say, ipopt_options)
+    run.say(f"re-solving with burn(s) {', '.join(str(j + 1) for j in small)} (under {PRUNE_MPS} m/s) fixed at zero")
+    trial = _design(zeroed, plan, model, run)
     if not (trial.plan.verified and trial.plan.total_dv_mps < plan.total_dv_mps):
         return solved
-    trial.plan.problem = problem_dict(problem)
+    trial.plan.problem = run.problem_table(problem)
     trial.plan.solver["zeroed_burns"] = [j + 1 for j in small]
     trial.plan.solver["attempts"] = plan.solver["attempts"] + trial.plan.solver["attempts"]
     return trial
@@ -438,7 +452,7 @@ def _screen_finds_seeds(problem, model) -> bool:
     return any(s.dv is not None for s in seeds)
 
 
-def _with_zero_burns(problem, model, first, burns, kept, steps, start):
+def _with_zero_burns(problem, model, first, burns, kept, steps, start, run):
     """The verified plan ``first`` of the problem without the held burns, as a plan of the whole
     ``problem``: the held burns at zero at their chosen epochs (the path, and so its verification,
     is the same), and a primal warm-start point of the whole layout (of the transcription returned
@@ -453,7 +467,7 @@ def _with_zero_burns(problem, model, first, burns, kept, steps, start):
     plan = copy(first)
     plan.burns = [first.burns[kept.index(j)] if j in kept else Burn(float(burns[j][0]), (0.0,) * 3, (0.0,) * 3)
                   for j in range(len(problem.burns))]
-    plan.problem = problem_dict(problem)
+    plan.problem = run.problem_table(problem)
     plan.solver = dict(first.solver)
     plan.warm = {"x": list(map(float, x)), "lam_x": [], "lam_g": [], "segments": tr.segments, "steps": tr.steps}
     return Solved(plan, tr)
@@ -480,7 +494,7 @@ def _claimed_events(tr, model, unpacked):
     return [perilune_record(zp[6], zp[:6], model), arrival_record(name, za[6], za[:6], model)]
 
 
-def _plan(problem, model, tr, unpacked, status, reason, verification, solver_log, x, lam, stages=()):
+def _plan(problem, model, tr, unpacked, status, reason, verification, solver_log, x, lam, stages, run):
     burns = [make_burn(t, dv, pre) for t, dv, pre in unpacked["burns"]]
     nodes = np.hstack([zs if i == 0 else zs[:, 1:] for i, zs in enumerate(unpacked["phases"])])
     return Plan(
@@ -491,15 +505,7 @@ def _plan(problem, model, tr, unpacked, status, reason, verification, solver_log
         solver={**solver_log[-1], "continuation": list(stages),
                 "software": f"slingback {__version__}, CasADi {ca.__version__}, IPOPT",
                 "mesh": {"segments": tr.segments, "steps": tr.steps}, "attempts": solver_log},
-        problem=problem_dict(problem),
+        problem=run.problem_table(problem),
         warm={"x": list(map(float, x)), "lam_x": list(map(float, lam[0])), "lam_g": list(map(float, lam[1])),
               "segments": tr.segments, "steps": tr.steps},
     )
-
-
-def problem_dict(problem):
-    try:
-        from ..problem_file import problem_to_dict
-    except ImportError:  # the file layer is optional for library use
-        return problem.to_dict()
-    return problem_to_dict(problem)
