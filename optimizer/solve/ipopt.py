@@ -95,8 +95,9 @@ class NLPCache:
 
     Building a solver costs ~0.25 s (measured on the bench_abort.py case: most of it generating
     the segments' SX derivatives; ~0.7 s before they were assembled per segment), about a warm
-    solve; trade-study cells, the zero-burn re-solve and repeated solves share one structure.  Least recently used entries are dropped beyond
-    ``size``; an entry holds its model, so the model's ``id`` in the key cannot be reused.
+    solve; trade-study cells, the zero-burn re-solve and repeated solves share one structure.
+    Least recently used entries are dropped beyond ``size``; an entry holds its model, so the
+    model's ``id`` in the key cannot be reused.
     """
 
     def __init__(self, size: int = 6):
@@ -143,7 +144,9 @@ def solve_nlp(tr: Transcription, x0, lam=None, extra=None):
     wall = time.perf_counter() - t0
     st = solver.stats()
     timing = {k[7:]: round(v, 4) for k, v in st.items() if k.startswith("t_wall_nlp_")}
-    return sol, {"timing_s": timing, "build_s": round(t_build, 4), "evaluation": getattr(solver, "slingback_evaluation", None), "status": st["return_status"], "success": bool(st["success"]), "iterations": int(st["iter_count"]),
+    return sol, {"timing_s": timing, "build_s": round(t_build, 4),
+                 "evaluation": getattr(solver, "slingback_evaluation", None), "status": st["return_status"],
+                 "success": bool(st["success"]), "iterations": int(st["iter_count"]),
                  "wall_s": wall, "objective": float(sol["f"])}
 
 

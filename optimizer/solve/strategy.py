@@ -13,6 +13,12 @@
    are staged (each usable burn alone, then the primer test of the others, :mod:`.primer`); model
    continuation solves cheaper models first.
 
+The chain reads top to bottom and never calls :func:`solve` again: ``solve`` -> ``_design``
+(continuation, the staged solve of several burns, or one layout) -> ``_one_layout`` (warm point,
+along-velocity injection first, global search, targeted guess) -> ``_solve_loop`` (NLP, retries,
+verification, refinement) -> ``_prune``.  Every step returns :class:`Solved`: the plan and the
+transcription its warm-start point belongs to (the staged solve's primer test needs both).
+
 May import everything below the wing (problem, models, propagate, verify, transcription, compiled)
 and the wing's other modules.  Never the file formats, the trade engine, export or the CLI.
 """
