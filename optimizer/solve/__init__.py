@@ -18,8 +18,9 @@ package loads no CasADi: :func:`solve` and the names below are looked up in thei
 first used, so the propagator, seeds and search stay usable without it.
 
 (The package shares its name with its entry point: ``optimizer/__init__.py`` imports this package
-first and binds ``optimizer.solve`` to the function; use ``from optimizer.solve import ...`` or
-``import optimizer.solve.strategy``, not ``import optimizer.solve as ...``.)
+first and binds the attribute ``optimizer.solve`` to the function.  So write
+``from optimizer.solve import strategy`` or ``from optimizer.solve.strategy import ...``; the
+attribute forms ``import optimizer.solve.strategy as s`` and ``optimizer.solve.strategy`` fail.)
 """
 
 from __future__ import annotations
