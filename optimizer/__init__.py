@@ -6,10 +6,21 @@ mission's own independent verification and licensed practice.
 
 __version__ = "0.1.0"
 
+# ``optimizer.solve`` is both the solve wing (a package) and the library's entry point below.
+# Importing a subpackage sets the parent's attribute only the first time it is imported, so it is
+# imported here, before anything else can, and the name is then bound to the function for good.
+# The wing's __init__ loads no CasADi: the propagator and models stay usable without it.
+from . import solve as _wing  # noqa: E402
+
 
 def solve(problem, **kwargs):
-    """Design the plan of ``problem``; see :func:`optimizer.solver.solve` (imported lazily, so that
-    the propagator and models can be used without loading CasADi)."""
-    from .solver import solve as _solve
+    """Design the plan of ``problem``: :func:`optimizer.solve.strategy.solve`, with each plan
+    carrying its problem in the problem file's table form (what ``slingback check`` reads back;
+    the solve wing itself does not import the file layer)."""
+    from .problem_file import problem_to_dict
 
-    return _solve(problem, **kwargs)
+    kwargs.setdefault("problem_table", problem_to_dict)
+    return _wing.solve(problem, **kwargs)
+
+
+__all__ = ["solve", "__version__"]

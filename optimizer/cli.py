@@ -137,13 +137,14 @@ def _solve_into(problem, out: Path, force: bool, args) -> int:
     from .export.run import refuse_existing, save_rescued_plan
 
     refuse_existing(out, force)  # exists, is a file, lies under a file or cannot be written: before solving
-    from .solver import SolveError, solve
+    from .problem_file import problem_to_dict
+    from .solve import SolveError, solve
 
     progress = _progress(args)
     if progress:
         progress(f"solving {problem.name} ({len(problem.burns)} burn(s), model {problem.model.kind})")
     try:
-        plan = solve(problem, progress=progress)
+        plan = solve(problem, progress=progress, problem_table=problem_to_dict)
     except SolveError as exc:
         _err(f"no solution: the problem cannot be set up ({exc}); nothing written")
         return EXIT_UNVERIFIED

@@ -1,13 +1,13 @@
 """A free-return path built without the optimiser: root-finding on the independent propagator.
 
-The seed builder (:mod:`optimizer.seed`) uses only the propagator and scipy's ``fsolve``: the
+The seed builder (:mod:`optimizer.solve.seed`) uses only the propagator and scipy's ``fsolve``: the
 path it returns is ballistic by construction and is confirmed by propagation, so it is a known
 zero-Δv answer that does not depend on the NLP.
 """
 
 from __future__ import annotations
 
-from optimizer.seed import circumlunar
+from optimizer.solve.seed import circumlunar
 
 
 def build(model, t_p, alt_km=150.0, departure_alt_km=200.0, return_alt_km=40.0, guess=(0.0, 2.5)):

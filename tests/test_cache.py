@@ -12,7 +12,7 @@ import test_optimizer as base
 from test_optimizer import model, natural  # noqa: F401  (the shared fixtures)
 from optimizer import solve
 from optimizer.problem import BurnSpec, LunarPass
-from optimizer.solver import NLPCache
+from optimizer.solve.ipopt import NLPCache
 
 HOUR = 3600.0
 

@@ -21,7 +21,8 @@ import pytest
 import test_optimizer as base
 from test_optimizer import model, natural  # noqa: F401  (the shared fixtures)
 from optimizer.problem import BurnSpec, Objective, ParkingStart, ReturnSpec
-from optimizer.solver import IPOPT_OPTIONS, initial_guess
+from optimizer.solve.guess import initial_guess
+from optimizer.solve.ipopt import IPOPT_OPTIONS
 from optimizer.transcription import Transcription
 
 HOUR = 3600.0

@@ -295,18 +295,18 @@ def test_models_and_sweep():
 
 @pytest.fixture
 def stub_solver(case, monkeypatch):
-    """Stand-in for optimizer.solver that returns the hand-made plan (the CLI plumbing under test)."""
+    """Stand-in for optimizer.solve that returns the hand-made plan (the CLI plumbing under test)."""
     problem, model, plan = case
     seen = {}
 
-    def solve(p, *, warm=None, progress=None):
+    def solve(p, *, warm=None, progress=None, **_):
         seen["problem"] = p
         if progress:
             progress("stub solver")
         return seen.get("plan", plan)
 
     stub = types.SimpleNamespace(solve=solve, SolveError=type("SolveError", (ValueError,), {}))
-    monkeypatch.setitem(sys.modules, "optimizer.solver", stub)
+    monkeypatch.setitem(sys.modules, "optimizer.solve", stub)
     return seen
 
 

@@ -36,11 +36,11 @@ def solver(case, monkeypatch):
     _, _, plan = case
     calls = []
 
-    def solve(p, *, warm=None, progress=None):
+    def solve(p, *, warm=None, progress=None, **_):
         calls.append(p)
         return plan
 
-    monkeypatch.setitem(sys.modules, "optimizer.solver",
+    monkeypatch.setitem(sys.modules, "optimizer.solve",
                         types.SimpleNamespace(solve=solve, SolveError=type("SolveError", (ValueError,), {})))
     return calls
 

@@ -1,4 +1,4 @@
-"""The global layer (``optimizer.search``) on planted cases: the answer is bounded by construction.
+"""The global layer (``optimizer.solve.search``) on planted cases: the answer is bounded by construction.
 
 Planting (common practice in benchmarking optimisers): take a ballistic free return built by
 root-finding (``free_return_fixture``: perilune 150 km, return vacuum perigee 40 km), choose a burn
@@ -20,7 +20,7 @@ from optimizer.frames import flight_path_angle
 from optimizer.models import build_model
 from optimizer.problem import BurnSpec, LunarPass, ModelSpec, Problem, ReturnSpec, StateStart
 from optimizer.propagate import propagate
-from optimizer.search import target
+from optimizer.solve.search import target
 from optimizer.timescales import parse_epoch
 
 HOUR, DAY = 3600.0, 86400.0

@@ -9,7 +9,7 @@ import pytest
 from optimizer import solve
 from optimizer.constants import GM_EARTH, R_EARTH
 from optimizer.problem_file import load_problem
-from optimizer.seed import inclination_deg
+from optimizer.solve.seed import inclination_deg
 
 PROBLEMS = Path(__file__).resolve().parent.parent / "problems"
 

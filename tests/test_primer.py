@@ -23,7 +23,7 @@ import test_optimizer as base
 from test_optimizer import model, natural  # noqa: F401  (the shared fixtures)
 from optimizer import solve
 from optimizer.problem import BurnSpec, LunarPass
-from optimizer.solver import primer_scan
+from optimizer.solve.primer import primer_scan
 from optimizer.transcription import Transcription
 
 HOUR = 3600.0

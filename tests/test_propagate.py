@@ -325,7 +325,7 @@ for model in (EarthCentred(fit, sun=True, j2=True), EarthCentred(CircularMoon(),
 propagate_burns(TwoBody(), 0.0, [7000.0, 0, 0, 0, 7.6, 0], [(100.0, [0.0, 0.1, 0.0])], 1000.0)
 propagate(CR3BP(), 0.0, [0.8, 0.1, 0.02, 0.1, -0.3, 0.0], 2.0, events=events[:2])
 bad = sorted(m for m in sys.modules
-             if m.split(".")[0] == "casadi" or m in ("optimizer.transcription", "optimizer.solver"))
+             if m.split(".")[0] == "casadi" or m in ("optimizer.transcription", "optimizer.solve.strategy", "optimizer.solve.ipopt"))
 assert not bad, f"the independent propagator pulled in {bad}"
 print("independent")
 """

@@ -32,7 +32,7 @@ problem = f.load_problem({str(DEMO_TRADE)!r})
 problem2, spec = f.load_sweep_file({str(DEMO_TRADE)!r})
 assert len(spec.burn_epochs) == 12, spec
 heavy = [m for m in ("pandas", "matplotlib", "casadi", "optimizer.trade.schedule", "optimizer.trade.cells",
-                     "optimizer.trade.front", "optimizer.export", "optimizer.solver") if m in sys.modules]
+                     "optimizer.trade.front", "optimizer.export", "optimizer.solve.strategy") if m in sys.modules]
 print(",".join(heavy))
 """
     env = {**os.environ, "PYTHONPATH": str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", "")}

@@ -89,14 +89,15 @@ def _margin_solve(problem, margin: dict, plan, progress, errors) -> dict:
     if not margin["fits"]:
         return {**out, "status": "not solved",
                 "reason": "the corridor is narrower than twice the needed margin"}, None
-    from ..solver import SolveError, solve
+    from ..problem_file import problem_to_dict
+    from ..solve import SolveError, solve
 
     tight = replace(problem, arrival=replace(problem.arrival, flight_path_margin_deg=m))
     if progress:
         progress(f"solving again with a {m:.2f} deg flight-path margin")
     tic = time.perf_counter()
     try:
-        p2 = solve(tight)
+        p2 = solve(tight, problem_table=problem_to_dict)
     except SolveError as exc:
         return {**out, "status": "failed", "reason": str(exc)}, None
     arr = p2.event("entry")

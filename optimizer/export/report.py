@@ -15,7 +15,7 @@ from ..constants import CAUTION
 from ..judge import ACTIVE_TOL, ConstraintRow
 from ..plan import solver_record
 from ..propellant import G0, finite_burns
-from ..search import failed_outcomes
+from ..solve.search import failed_outcomes
 from ..timescales import format_epoch
 
 __all__ = ["ConstraintRow", "constraint_rows", "report_markdown", "ACTIVE_TOL"]

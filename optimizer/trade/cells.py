@@ -162,7 +162,7 @@ def solve_task(problem: Problem, warm: dict | None, model, max_iter: int, burn_i
 
 
 def _solve_cell(problem, warm, model, max_iter, burn_index, cell, fallback):
-    from ..solver import solve  # CasADi is loaded in the worker, not at import of this module
+    from .. import solve  # CasADi is loaded in the worker, not at import of this module
 
     t0, c0 = time.perf_counter(), time.process_time()
     model = _interned(model)

@@ -90,7 +90,7 @@ def best_plan(problem: Problem, df: pd.DataFrame, *, by: str | None = None, cell
     own optimum, otherwise cold.
     """
     from ..models import build_model
-    from ..solver import solve
+    from .. import solve
 
     if cell is not None:
         hit = df[df["cell"] == cell]
@@ -107,7 +107,7 @@ def best_plan(problem: Problem, df: pd.DataFrame, *, by: str | None = None, cell
     dur = row["max_return_duration_days"] if math.isfinite(row["max_return_duration_days"]) else None
     cp = cell_problem(problem, row["burn_epoch_tdb_s"], win, dur, bi, name=f"{problem.name}-{row['cell']}")
     if model is None:
-        from ..solver import model_span
+        from ..solve.guess import model_span
 
         spans = [model_span(p) for p in (cp, problem)]
         model = build_model(problem.model, min(a for a, _ in spans), max(b for _, b in spans))

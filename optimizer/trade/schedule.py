@@ -239,14 +239,14 @@ def sweep_from_spec(problem: Problem, spec: dict, *, source: str = "<sweep>", **
 def _sweep_model(problem, problems):
     """One model over the span every cell (and the reference) can reach."""
     from ..models import build_model
-    from ..solver import model_span
+    from ..solve.guess import model_span
 
     spans = [model_span(p) for p in problems]
     return build_model(problem.model, min(a for a, _ in spans), max(b for _, b in spans))
 
 
 def _problem_dict(problem):
-    from ..solver import problem_dict
+    from ..problem_file import problem_to_dict as problem_dict
 
     return problem_dict(problem)
 

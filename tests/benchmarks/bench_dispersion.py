@@ -43,7 +43,7 @@ def main():
     else:
         from optimizer.export import write_run
         from optimizer.problem_file import load_problem
-        from optimizer.solver import solve
+        from optimizer import solve
 
         problem = load_problem(problem_file)
         tic = time.perf_counter()

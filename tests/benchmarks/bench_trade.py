@@ -98,7 +98,8 @@ def main():
     from optimizer.export.trade_folder import write_trade_folder
     from optimizer.trade.cells import reference_problem
     from optimizer.models import build_model
-    from optimizer.solver import model_span
+    from optimizer.solve.guess import model_span
+    from optimizer.timescales import format_epoch
 
     cores = os.cpu_count()
     print(f"machine: {cores} cores; load average before {os.getloadavg()[0]:.2f} (other processes slow "

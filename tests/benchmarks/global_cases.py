@@ -19,7 +19,7 @@ Construction of one case (a *planted* plan, so the optimum has a known upper bou
    (``build_model(problem.model, problem.start_epoch, problem.latest_epoch())``).
 2. A ballistic circumlunar free return through a perilune of altitude 100-4000 km at ``t_p``:
    departure perigee 180-400 km, return vacuum perigee 5-70 km (entry target) or 25-300 km
-   (perigee target), found by ``fsolve`` on the propagator (``optimizer.seed.ballistic``: the
+   (perigee target), found by ``fsolve`` on the propagator (``optimizer.solve.seed.ballistic``: the
    in-plane angle and the Moon-relative speed at perilune are the unknowns).  In the Moon's plane
    (tilt 0) for 40 % of the cases, otherwise the pass plane tilted by 3-15 degrees either way
    (reached by continuation in steps of at most 0.1 rad from the in-plane solution).
@@ -64,7 +64,7 @@ from optimizer.frames import flight_path_angle
 from optimizer.models import build_model
 from optimizer.problem import BurnSpec, LunarPass, ModelSpec, Problem, ReturnSpec, StateStart
 from optimizer.propagate import VERIFY_ATOL, VERIFY_RTOL, propagate, propagate_burns
-from optimizer.seed import ballistic
+from optimizer.solve.seed import ballistic
 from optimizer.timescales import parse_epoch
 
 GENERATOR_ID = 10_2026  # part of the rng seed: changing it changes every case

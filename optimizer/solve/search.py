@@ -20,8 +20,9 @@ of Earth, the Moon passed on either side).  This module:
    screened Δv is far above the best verified answer (:data:`SKIP_RATIO`).
 
 Every seed and start is recorded (``plan.solver["search"]``) so the report can show the landscape.
-Imports the propagator and the guess helpers of the solver; never the other way round except
-through :func:`global_solve`.
+
+May import: problem, models, propagate, events.  Never the wing's ``guess``, ``ipopt`` or
+``strategy``: the chain calls :func:`global_solve` with a ``solve_from`` function of its own.
 """
 
 from __future__ import annotations
@@ -32,8 +33,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .events import RETURN_RADIUS_KM, encounter_radius
-from .propagate import propagate
+from ..events import RETURN_RADIUS_KM, encounter_radius
+from ..propagate import propagate
 
 #: Seed epochs per burn window (both ends included).
 EPOCHS = 9

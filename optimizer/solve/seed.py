@@ -4,6 +4,8 @@ From a perilune state on the Moon's far side at a chosen epoch (altitude fixed; 
 position angle and the Moon-relative speed), propagate backwards to the departure perigee and
 forwards to the return perigee, and solve for both perigee altitudes.  The result is a ballistic
 free return: the seed of injection designs, and a known zero-Δv answer for the tests.
+
+May import: models, propagate and scipy.  Nothing of the NLP.
 """
 
 from __future__ import annotations
@@ -13,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.optimize import fsolve
 
-from .propagate import Event, propagate
+from ..propagate import Event, propagate
 
 SEED_RTOL = 1e-11
 
