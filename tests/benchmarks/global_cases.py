@@ -530,6 +530,8 @@ def _generate(seed):
         return seed, case_to_dict(make_case(seed))
     except GenerationError as exc:
         return seed, {"generator": GENERATOR_VERSION, "error": str(exc)}
+    except RuntimeError as exc:  # a drawn geometry the propagator cannot follow (e.g. into a body)
+        return seed, {"generator": GENERATOR_VERSION, "error": f"propagation failed: {exc}"}
 
 
 def load_cases(seed_list, workers=2, recompute=False, say=print) -> list[Case]:
