@@ -16,7 +16,6 @@ from dataclasses import replace
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))  # tests/
 
-import free_return_fixture as fr  # noqa: E402,F401  (test_optimizer's fixture module)
 import test_optimizer as base  # noqa: E402
 from optimizer import solve  # noqa: E402
 from optimizer.problem import BurnSpec, LunarPass  # noqa: E402

@@ -35,7 +35,6 @@ sys.path.insert(0, HERE)
 from bench_abort import HOUR, T_PERILUNE, abort_problem, free_return_state, scenario_model  # noqa: E402
 from bench_robustness import unit  # noqa: E402
 from optimizer import solve  # noqa: E402
-from optimizer.problem import BurnSpec  # noqa: E402
 
 
 def main(argv=None):
