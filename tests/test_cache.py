@@ -15,7 +15,8 @@ import test_optimizer as base
 from test_optimizer import model, natural  # noqa: F401  (the shared fixtures)
 from optimizer import solve
 from optimizer.problem import BurnSpec, LunarPass
-from optimizer.solver import NLPCache
+from optimizer.solver import IPOPT_OPTIONS, NLPCache
+from optimizer.transcription import Transcription
 
 HOUR = 3600.0
 
@@ -27,7 +28,7 @@ def problem(natural):
 
 @pytest.fixture(scope="module")
 def warm(problem, model):
-    """A cache that has served one solve of ``problem``, and that solve (shared by both tests)."""
+    """A cache that has served one solve of ``problem``, and that solve."""
     cache = NLPCache()
     first = solve(problem, model=model, cache=cache)
     return cache, first
@@ -65,9 +66,27 @@ def test_cached_solver_gives_the_fresh_answer_for_other_bounds(problem, model, w
     assert cached.total_dv_mps > first.total_dv_mps  # the bounds did take effect
 
 
-def test_other_structure_is_not_shared(problem, model, warm, builds):
-    cache, _ = warm
-    misses = cache.misses
+def test_other_structure_is_not_shared(problem, model, monkeypatch):
+    """The cache's keying on its own (no IPOPT build, no solve): a problem that differs only in
+    bounds is served the solver built for the first; one whose burn has another direction rule
+    (same variables, other constraints) gets a solver of its own."""
+    built = []
+
+    def fake_build(tr, opts):
+        built.append(tr)
+        return object()
+
+    monkeypatch.setattr(solver_module, "build_solver", fake_build)
+    steps = [problem.mesh.steps] * (len(problem.burns) + 2)  # the layout solve() starts from
+
+    def nlp(p):
+        return Transcription(p, model, steps, p.mesh.segments)
+
+    cache = NLPCache()
+    first = cache.solver(nlp(problem), IPOPT_OPTIONS)
+    other = replace(problem, lunar=LunarPass((1500.0, 5000.0)),
+                    burns=(BurnSpec((base.T_START + 3 * HOUR, base.T_START + 12 * HOUR), 300.0),))
+    assert cache.solver(nlp(other), IPOPT_OPTIONS) is first and len(built) == 1
     along = replace(problem, burns=(replace(problem.burns[0], direction="along"),))
-    solve(along, model=model, cache=cache)
-    assert cache.misses > misses and builds  # a new structure builds its own solver
+    assert cache.solver(nlp(along), IPOPT_OPTIONS) is not first and len(built) == 2
+    assert (cache.hits, cache.misses) == (1, 2)
