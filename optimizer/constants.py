@@ -16,11 +16,8 @@ import math
 GM_SUN = 132712440040.944
 GM_EMB = 403503.236310
 EARTH_MOON_MASS_RATIO = 81.30056
-GM_EARTH = GM_EMB * EARTH_MOON_MASS_RATIO / (1.0 + EARTH_MOON_MASS_RATIO)  # 398600.4362 km^3/s^2
-GM_MOON = GM_EMB / (1.0 + EARTH_MOON_MASS_RATIO)  # 4902.8001 km^3/s^2
-
-# IAU 2015 Resolution B3 nominal terrestrial GM (for comparison only; the models use DE421's).
-GM_EARTH_IAU2015 = 398600.4  # km^3/s^2 (3.986004e14 m^3/s^2)
+GM_EARTH = GM_EMB * EARTH_MOON_MASS_RATIO / (1.0 + EARTH_MOON_MASS_RATIO)  # 398600.43569 km^3/s^2
+GM_MOON = GM_EMB / (1.0 + EARTH_MOON_MASS_RATIO)  # 4902.80062 km^3/s^2
 
 # --- Radii and shape ---------------------------------------------------------------------------
 # WGS 84 (NIMA TR8350.2, 3rd ed.), semi-major axis of the ellipsoid.
@@ -49,10 +46,10 @@ EARTH_MOON_DISTANCE = 384400.0  # km
 G0 = 9.80665e-3  # km/s^2, 3rd CGPM (1901)
 
 # --- CR3BP Earth-Moon mass parameter -----------------------------------------------------------
-MU_EARTH_MOON = GM_MOON / (GM_EARTH + GM_MOON)  # 0.0121505856...
+MU_EARTH_MOON = GM_MOON / (GM_EARTH + GM_MOON)  # 0.01215058561
 # Characteristic length and time of the CR3BP units (length = mean distance, time so that G*M=1).
 CR3BP_LENGTH = EARTH_MOON_DISTANCE
-CR3BP_TIME = math.sqrt(CR3BP_LENGTH**3 / (GM_EARTH + GM_MOON))  # s, about 4.34 days / 2 pi
+CR3BP_TIME = math.sqrt(CR3BP_LENGTH**3 / (GM_EARTH + GM_MOON))  # 375190.26 s = 4.3425 days (period / 2 pi)
 
 CAUTION = (
     "Results are for design studies only. They are not flight-certified; any flight use must go "

@@ -418,10 +418,6 @@ class ChebyshevEphemeris:
         """Geocentric Moon velocity (derivative of the fit), km/s, shaped like ``moon(t)``."""
         return self._eval(self._moon, self._x(t), derivative=True)
 
-    def sun_velocity(self, t):
-        """Geocentric Sun velocity (derivative of the fit), km/s; ``None`` if not fitted."""
-        return self._eval(self._sun, self._x(t), derivative=True)
-
     # -- CasADi evaluation -------------------------------------------------------------------
     def moon_casadi(self, t):
         """Moon position, km, as a CasADi 3x1 expression of ``t`` (SX/MX scalar or float).

@@ -17,13 +17,14 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
+from .constants import SECONDS_PER_DAY
 from .frames import flight_path_angle
 
 __all__ = ["ConstraintRow", "ACTIVE_TOL", "judge", "failed_rows", "DEFAULT_DURATION_DAYS"]
 
 #: How close to a bound counts as "at" it, per unit.
 ACTIVE_TOL = {"s": 1.0, "m/s": 0.01, "deg": 0.01, "km": 1.0, "km/s": 1e-6, "h": 1.0 / 3600.0,
-              "d": 1.0 / 86400.0, "": 0.0}
+              "d": 1.0 / SECONDS_PER_DAY, "": 0.0}
 #: Longest return when a problem gives neither an arrival window nor a longest duration (the
 #: span ``Problem.latest_epoch`` allows); the report says when it binds.
 DEFAULT_DURATION_DAYS = 12.0
@@ -147,7 +148,7 @@ def judge(problem, model, start_epoch, start_state, burns, pre_burn, perilune, a
     if a.inclination_deg is not None:
         rows.append(row("arrival inclination", arrival.inclination_deg if arrival else None, *a.inclination_deg,
                         "deg"))
-    days = None if t_arr is None else (t_arr - start_epoch) / 86400.0
+    days = None if t_arr is None else (t_arr - start_epoch) / SECONDS_PER_DAY
     if a.max_duration_days is not None:
         rows.append(row("time to arrival", days, None, a.max_duration_days, "d"))
     elif a.epoch_window is None:

@@ -88,7 +88,8 @@ class Verification:
     residuals : dict
         Physical residuals between the optimiser's path and the re-propagated one
         (``entry_position_km``, ``entry_speed_mps``, ``flight_path_deg``, ``perilune_altitude_km``,
-        ``entry_epoch_s`` ...).
+        ``perilune_epoch_s``, ``arrival_epoch_s``; ``perigee_altitude_km`` for a vacuum-perigee
+        target; see :func:`optimizer.verify.verify`).
     tolerances : dict
         The limits each residual was held to.
     violations : list of str

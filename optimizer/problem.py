@@ -10,7 +10,7 @@ from dataclasses import dataclass, field, asdict
 
 import numpy as np
 
-from .constants import ENTRY_INTERFACE_ALT, R_EARTH
+from .constants import ENTRY_INTERFACE_ALT, R_EARTH, SECONDS_PER_DAY
 
 
 @dataclass(frozen=True)
@@ -208,9 +208,9 @@ class Problem:
         if self.arrival.epoch_window is not None:
             ends.append(self.arrival.epoch_window[1])
         if self.arrival.max_duration_days is not None:
-            ends.append(self.start_epoch + self.arrival.max_duration_days * 86400.0)
+            ends.append(self.start_epoch + self.arrival.max_duration_days * SECONDS_PER_DAY)
         if self.arrival.epoch_window is None and self.arrival.max_duration_days is None:
-            ends.append(self.start_epoch + 12 * 86400.0)
+            ends.append(self.start_epoch + 12 * SECONDS_PER_DAY)
         return max(ends)
 
     def to_dict(self) -> dict:

@@ -19,7 +19,7 @@ from dataclasses import replace
 
 import tomli_w
 
-from .constants import ENTRY_INTERFACE_ALT, GM_EARTH, R_EARTH
+from .constants import ENTRY_INTERFACE_ALT, GM_EARTH, R_EARTH, SECONDS_PER_DAY
 from .frames import kepler_to_cartesian
 from .inputs import EPHEMERIS_SPAN, MAX_DEPTH, ProblemError, did_you_mean, read_toml
 from .inputs import show as _show
@@ -207,13 +207,13 @@ def _check_ephemeris_span(problem: Problem, source: str, start_only: bool = Fals
     ``start_only``: the model reads DE421 at the start epoch alone (a circular Moon through it)."""
     lo, hi = EPHEMERIS_SPAN
     key = "[start].epoch" if isinstance(problem.start, StateStart) else "[start].epoch_window"
-    if not lo <= problem.start_epoch - 4 * 86400.0 <= problem.start_epoch + 4 * 86400.0 <= hi:
-        raise ProblemError(f"{source}: {key}: expected an epoch between {format_epoch(lo + 4 * 86400.0, 0)} and "
-                           f"{format_epoch(hi - 4 * 86400.0, 0)} TDB (the model places the Moon from DE421, "
+    if not lo <= problem.start_epoch - 4 * SECONDS_PER_DAY <= problem.start_epoch + 4 * SECONDS_PER_DAY <= hi:
+        raise ProblemError(f"{source}: {key}: expected an epoch between {format_epoch(lo + 4 * SECONDS_PER_DAY, 0)} and "
+                           f"{format_epoch(hi - 4 * SECONDS_PER_DAY, 0)} TDB (the model places the Moon from DE421, "
                            "which covers 1900-2050)")
     if start_only:
         return
-    if problem.latest_epoch() + 86400.0 > hi:
+    if problem.latest_epoch() + SECONDS_PER_DAY > hi:
         raise ProblemError(f"{source}: {_latest_key(problem)}: the problem runs to "
                            f"{format_epoch(problem.latest_epoch(), 0)} TDB, past the DE421 span of the ephemeris "
                            f"model (ends {format_epoch(hi, 0)} TDB; the path must end a day before)")
@@ -226,9 +226,9 @@ def _latest_key(problem: Problem) -> str:
     if a.epoch_window is not None:
         ends.append((a.epoch_window[1], "[return].epoch_window"))
     if a.max_duration_days is not None:
-        ends.append((t0 + a.max_duration_days * 86400.0, "[return].max_duration_days"))
+        ends.append((t0 + a.max_duration_days * SECONDS_PER_DAY, "[return].max_duration_days"))
     if a.epoch_window is None and a.max_duration_days is None:
-        ends.append((t0 + 12 * 86400.0, "[return].max_duration_days (default 12 days)"))
+        ends.append((t0 + 12 * SECONDS_PER_DAY, "[return].max_duration_days (default 12 days)"))
     return max(ends, key=lambda e: e[0])[1]
 
 
@@ -374,7 +374,7 @@ def _arrival(t: "_Table", start, burns) -> ReturnSpec:
         max_duration_days=t.number("max_duration_days", None, lo=0.0, hi=100.0, lo_open=True))
     spec = _flight_path_margin(t, spec)
     if spec.max_duration_days is not None:
-        t_last = t0 + spec.max_duration_days * 86400.0
+        t_last = t0 + spec.max_duration_days * SECONDS_PER_DAY
         late = next((i for i, b in enumerate(burns, 1) if b.window[0] >= t_last), None)
         if late is not None:
             raise t.error("max_duration_days", f"a duration that reaches past the opening of [[burn]] #{late}'s "

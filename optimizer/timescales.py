@@ -18,7 +18,7 @@ import numpy as np
 
 from optimizer.constants import JD_J2000, SECONDS_PER_DAY
 
-_DAY = 86400
+_DAY = int(SECONDS_PER_DAY)  # whole seconds: the tick arithmetic below is exact in integers
 _J2000_ORDINAL = _dt.date(2000, 1, 1).toordinal()  # the calendar day whose noon is J2000
 _EPOCH_RE = re.compile(
     r"(\d{4})-(\d{2})-(\d{2})[T ](\d{2}):(\d{2}):(\d{2})(?:\.(\d+))?(?:\s*TDB)?",

@@ -119,6 +119,13 @@ def test_burn_epoch_text_contradicting_its_seconds_exit_3(base, tmp_path):
     assert code == 3 and "burns[1].epoch_tdb" in err
 
 
+@pytest.mark.parametrize("scale", ["UTC", 1e300, None])
+def test_time_scale_other_than_tdb_exit_3(base, tmp_path, scale):
+    # every epoch of plan.json is TDB (docs/plan-format.md); a file saying otherwise is not the plan checked
+    code, err = check(tmp_path, tampered(base, lambda d: d.update(time_scale=scale)))
+    assert code == 3 and "time_scale" in err
+
+
 def test_tolerance_raised_in_the_carried_problem_exit_2(base, tmp_path):
     """The problem inside plan.json is read like a problem file: tolerances above the documented
     limits are refused, so a plan cannot bring its own meaningless tolerances."""

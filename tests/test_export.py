@@ -13,6 +13,7 @@ import hashlib
 import io
 import json
 import os
+import re
 import sys
 import types
 from dataclasses import replace
@@ -95,13 +96,18 @@ def test_oem_read_by_independent_reader(case, folder):
     for arc, (t, y) in zip(arcs, ((t0, y0), (t1, y1))):
         np.testing.assert_allclose(arc.state(t).T[:, :3], y[:, :3], atol=2e-6)
         np.testing.assert_allclose(arc.state(t).T[:, 3:], y[:, 3:], atol=2e-9)
-    # it ends at the plan's entry interface crossing, through the plan's perilune
+    # it ends at the plan's entry interface crossing, through the plan's perilune; the plan's events
+    # come from another integrator (export_fixture: scipy's Radau; measured against the DOP853
+    # re-propagation 1.4e-5 s, 5e-5 km and 5e-8 km/s at entry, 9e-6 s at perilune): bounds of
+    # 1 ms, 1 m and 5 mm/s leave a wide margin and still catch a wrong crossing (11 km/s at entry)
     entry, peri = plan.event("entry"), plan.event("perilune")
-    assert t1[-1] == pytest.approx(entry.epoch, abs=1e-6)
-    np.testing.assert_allclose(y1[-1], entry.state, atol=1e-5)
+    assert t1[-1] == pytest.approx(entry.epoch, abs=1e-3)
+    np.testing.assert_allclose(y1[-1, :3], entry.state[:3], atol=1e-3)
+    np.testing.assert_allclose(y1[-1, 3:], entry.state[3:], atol=5e-6)
     k = np.argmin(abs(t1 - peri.epoch))
-    assert abs(t1[k] - peri.epoch) < 1e-6
-    np.testing.assert_allclose(y1[k], peri.state, atol=1e-5)
+    assert abs(t1[k] - peri.epoch) < 1e-3
+    np.testing.assert_allclose(y1[k, :3], peri.state[:3], atol=1e-3)
+    np.testing.assert_allclose(y1[k, 3:], peri.state[3:], atol=5e-6)
 
 
 def test_sampling_is_dense_near_the_bodies(case):
@@ -147,6 +153,24 @@ def test_csv_columns_and_values(case, folder):
         assert len({len(r) for r in rows}) == 1 and len(rows) == 1 + len(pd.read_csv(folder / name))
 
 
+def test_fixture_verdict_sees_a_wrong_claimed_event(case):
+    """The fixture's claims (another integrator, export_fixture) pass; the same claims with the
+    perilune 2 km higher, or the entry 2 km along the track, fail the verdict (tolerances 1 km)."""
+    from optimizer.verify import verify
+
+    problem, model, plan = case
+    args = (model, problem, plan.start_epoch, np.array(plan.start_state), plan.burns)
+    assert verify(*args, plan.events, problem.latest_epoch()).passed
+    peri, entry = plan.event("perilune"), plan.event("entry")
+    moved = np.array(entry.state)
+    moved[:3] += 2.0 * moved[3:] / np.linalg.norm(moved[3:])
+    for wrong, key in ((replace(peri, altitude_km=peri.altitude_km + 2.0), "perilune_altitude_km"),
+                       (replace(entry, state=tuple(moved)), "entry_position_km")):
+        claims = [wrong if e.name == wrong.name else e for e in plan.events]
+        ver = verify(*args, claims, problem.latest_epoch())
+        assert not ver.passed and any(v.startswith(f"{key} residual") for v in ver.violations), ver.violations
+
+
 def test_plan_json_round_trip(case, folder):
     problem, _, plan = case
     data = json.loads((folder / "plan.json").read_text())
@@ -161,6 +185,7 @@ def test_plan_json_round_trip(case, folder):
 
 
 def test_report(case, folder):
+    _, _, plan = case
     text = (folder / "report.md").read_text()
     assert CAUTION in text and "NOT VERIFIED" not in text
     assert "Verdict: **PASSED**" in text
@@ -169,7 +194,13 @@ def test_report(case, folder):
         assert heading in text
     for png in ("path-inertial.png", "path-rotating.png", "altitude.png", "burns.png"):
         assert f"]({png})" in text and (folder / png).stat().st_size > 1000
-    assert "| perilune altitude | 147.3" in text and "inactive" in text
+    # the constraint row prints the re-propagated perilune altitude (4 decimals); the reference is
+    # the fixture's own perilune, found with another integrator (scipy's Radau, export_fixture),
+    # which agrees with the re-propagation to ~1e-7 km: a wrong figure in the row shows
+    row = re.search(r"^\| perilune altitude \| ([0-9.]+) \| 100 \| 400 \| km \| 1 km \| (\w+) \|$", text, re.M)
+    assert row is not None, "no perilune altitude row"
+    assert float(row.group(1)) == pytest.approx(plan.event("perilune").altitude_km, abs=1e-4)
+    assert row.group(2) == "inactive"  # inside [100, 400] km by more than the 1 km tolerance
 
 
 def test_unverified_plan_is_marked(case, tmp_path):

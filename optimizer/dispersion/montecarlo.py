@@ -16,7 +16,7 @@ import math
 import numpy as np
 import pandas as pd
 
-from ..constants import GM_EARTH, R_EARTH, R_MOON
+from ..constants import GM_EARTH, R_EARTH, R_MOON, SECONDS_PER_DAY
 from ..models.factory import build_model
 from ..timescales import format_epoch
 from ..executors import make_executor
@@ -29,7 +29,7 @@ __all__ = ["nominal_of", "dispersion_model", "run_samples", "CHUNK", "perturbati
 
 CHUNK = 25
 #: How long past the nominal arrival a dispersed sample is followed (a late or skipping path).
-FOLLOW_S = 2.0 * 86400.0
+FOLLOW_S = 2.0 * SECONDS_PER_DAY
 
 
 def nominal_of(plan, problem, model=None) -> Nominal:

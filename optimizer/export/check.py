@@ -155,9 +155,11 @@ def claim_differences(data: dict, plan, problem, ver, model=None) -> list[str]:
         tolerances the file records (they must be the problem's), ``total_dv_mps`` and each burn's ``dv_mps`` with the norm of its ICRF components
         (within :data:`DV_TOL_MPS` + 1e-6 of the value), each burn's ``dv_rtn_mps`` with its ICRF
         components turned into the RTN frame of the re-propagated pre-burn state, and every epoch
-        written both as text and as seconds (within 1 ms).
+        written both as text and as seconds (within 1 ms); ``time_scale`` must be ``TDB``.
     """
     out = []
+    if data.get("time_scale") != "TDB":  # every epoch of the file is read as TDB
+        out.append(f"time_scale: the file says {_short(data.get('time_scale'))}, the epochs are read as 'TDB'")
     status = data.get("status")
     if status != "verified":
         out.append(f"status: the plan says {status!r}, not 'verified'" +

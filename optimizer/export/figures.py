@@ -22,7 +22,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 from .. import __version__  # noqa: E402
-from ..constants import CAUTION  # noqa: E402
+from ..constants import CAUTION, SECONDS_PER_DAY  # noqa: E402
 from ..frames import inertial_to_rotating  # noqa: E402
 from ..timescales import format_epoch  # noqa: E402
 
@@ -118,7 +118,7 @@ def write_figures(sampled, plan, problem, out_dir, *, earth_radius_km: float, mo
         _save(fig, out_dir / "path-rotating.png", plan, model_name)
         written.append("path-rotating.png")
 
-    days = (sampled.t - sampled.t[0]) / 86400.0
+    days = (sampled.t - sampled.t[0]) / SECONDS_PER_DAY
     fig, ax = plt.subplots(figsize=(7.0, 4.0))
     alt_e = np.maximum(np.linalg.norm(sampled.y[:, :3], axis=1) - earth_radius_km, 1.0)
     ax.semilogy(days, alt_e, color=PALETTE["path"], lw=1.2, label="above Earth")
@@ -126,13 +126,13 @@ def write_figures(sampled, plan, problem, out_dir, *, earth_radius_km: float, mo
         alt_m = np.maximum(np.linalg.norm(sampled.y[:, :3] - sampled.moon_r, axis=1) - moon_radius_km, 1.0)
         ax.semilogy(days, alt_m, color=PALETTE["moon"], lw=1.0, label="above the Moon")
     for i, b in enumerate(plan.burns, 1):
-        ax.axvline((b.epoch - sampled.t[0]) / 86400.0, color=PALETTE["burn"], lw=0.8, ls=":",
+        ax.axvline((b.epoch - sampled.t[0]) / SECONDS_PER_DAY, color=PALETTE["burn"], lw=0.8, ls=":",
                    label="burn" if i == 1 else None)
     for e in sampled.events:
         if e.name in ("perilune", "entry", "perigee"):
             colour = PALETTE["perilune"] if e.name == "perilune" else PALETTE["arrival"]
-            ax.plot((e.epoch - sampled.t[0]) / 86400.0, max(e.altitude_km, 1.0), "D" if e.name == "perilune" else "s",
-                    color=colour, ms=6, label=f"{e.name} {e.altitude_km:.1f} km")
+            ax.plot((e.epoch - sampled.t[0]) / SECONDS_PER_DAY, max(e.altitude_km, 1.0),
+                    "D" if e.name == "perilune" else "s", color=colour, ms=6, label=f"{e.name} {e.altitude_km:.1f} km")
     ax.set_xlabel(f"days since {format_epoch(sampled.t[0], 0)} TDB", color=ink, fontsize=8)
     ax.set_ylabel("altitude, km", color=ink, fontsize=8)
     _style(ax, f"{plan.name}: altitude")

@@ -11,7 +11,7 @@ import json
 import numpy as np
 
 from .. import __version__
-from ..constants import CAUTION
+from ..constants import CAUTION, SECONDS_PER_DAY
 from ..judge import ACTIVE_TOL, ConstraintRow
 from ..plan import solver_record
 from ..propellant import G0, finite_burns
@@ -166,7 +166,7 @@ def report_markdown(plan, problem, *, sampled=None, figures=(), files=(), notes=
           "(the same rows decide the verdict); *active* means at a bound within the tolerance shown.", ""]
     L += _table(["constraint", "value", "lower", "upper", "unit", "within", "state"], [
         [c.name, _fmt(c.value, c.unit), _fmt(c.lo, c.unit), _fmt(c.hi, c.unit), "epoch" if c.unit == "s" else c.unit,
-         f"{c.tol * {'d': 86400.0, 'h': 3600.0}[c.unit]:g} s" if c.unit in ("d", "h") else f"{c.tol:g} {c.unit}",
+         f"{c.tol * {'d': SECONDS_PER_DAY, 'h': 3600.0}[c.unit]:g} s" if c.unit in ("d", "h") else f"{c.tol:g} {c.unit}",
          f"**{c.state}**" if c.state in ("active", "violated", "missing") else c.state]
         for c in rows_c]) if rows_c else ["No constraint could be evaluated (the burns cannot be re-propagated).", ""]
     defaults = [c for c in rows_c if c.name.startswith("time to arrival (default") and c.state == "active"]

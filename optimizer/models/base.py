@@ -87,11 +87,6 @@ class ForceModel:
     def moon_position_casadi(self, t):
         raise NotImplementedError
 
-    def earth_position_casadi(self, t):
-        import casadi as ca  # only the CasADi side needs it
-
-        return ca.DM.zeros(3)
-
     def describe(self) -> dict:
         """Plain-data description written into every output file."""
         return {"name": self.name, "frame": self.frame}

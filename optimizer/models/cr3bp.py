@@ -69,11 +69,6 @@ class CR3BP(ForceModel):
     def moon_velocity(self, t):
         return np.zeros(3)
 
-    def earth_position_casadi(self, t):
-        import casadi as ca
-
-        return ca.DM([-self.mu, 0.0, 0.0])
-
     def moon_position_casadi(self, t):
         import casadi as ca
 

@@ -1,6 +1,6 @@
 """Wall time of a 10-day ephemeris-model coast: our DOP853 propagator against heyoka.
 
-The coast is the invented translunar-like one of ``tests/test_propagate.py`` (Earth + Moon + Sun
+The coast is an invented translunar-like one (Earth + Moon + Sun
 from a Chebyshev fit of DE421, no J2), integrated at the verification tolerances
 (rtol = atol = 1e-12).  Heyoka (Taylor method, tol 1e-15) integrates the same equations on the
 same Chebyshev series; its JIT compilation is timed apart from its integration.
@@ -42,7 +42,8 @@ class _GenericRhs(EarthCentred):
 
 
 def coast_start(fit):
-    """Same start as tests/test_propagate.py::_translunar_like_coast."""
+    """An invented translunar-like coast: 200,000 km from Earth on the side away from the Moon,
+    moving outward at 1 km/s with 0.8 km/s across (the README's figures were measured on it)."""
     rm, vm = fit.moon(T0), fit.moon_velocity(T0)
     u = -rm / np.linalg.norm(rm)
     h = np.cross(rm, vm)
@@ -106,9 +107,12 @@ def main(argv=None):
     print(f"  ratio ours / heyoka integration          {ours / hey:9.1f}")
     print(f"  ratio ours / heyoka compile+integration  {ours / (compile_s + hey):9.3f}")
     print(f"  final position difference                {np.linalg.norm(arc.y[:3, -1] - y_ref[:3]) * 1e6:9.2f} mm")
-    print(f"  goals: ours < 500 ms: {'met' if ours < 0.5 else 'NOT met'}; "
-          f"10-day coast <= 5 ms (issue 14): {'met' if ours <= 0.005 else 'NOT met'}; "
-          f"within 5x of heyoka integration: {'met' if ours < 5 * hey else 'NOT met'}")
+    verdict = lambda ok: "MET" if ok else "MISSED"  # noqa: E731
+    print("  goals:")
+    print(f"    ours < 500 ms                          {verdict(ours < 0.5)}")
+    print(f"    10-day coast <= 5 ms (issue 14)        {verdict(ours <= 0.005)}")
+    print(f"    within 5x of heyoka integration        {verdict(ours < 5 * hey)}  "
+          f"(ours / heyoka = {ours / hey:.1f}x)")
 
     if args.profile:
         prof = cProfile.Profile()
