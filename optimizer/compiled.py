@@ -10,15 +10,24 @@ the library is not built yet.
 Where: ``$SLINGBACK_CACHE_DIR`` if set, else ``$XDG_CACHE_HOME/slingback`` or ``~/.cache/slingback``;
 never inside the package.  Which library: the SHA-256 of everything the generated code depends on
 (CasADi's version, the compiler and its flags, the source of the transcription and of this module,
-and the serialised objective and constraint functions, which hold the model's numbers, the mesh and
-the layout).  A library is compiled under a temporary name and renamed when complete, so no process
+and the serialised objective and constraint functions, which hold the model's form, the mesh and
+the layout).
+
+What a library is shared by: the numbers that change with the epoch (start epoch, ephemeris window
+and Chebyshev coefficients, a circular Moon's orbit) are the NLP's parameter vector ``p``
+(``Transcription.nlp_parametric``, value ``Transcription.p_value``), inputs of the compiled
+functions rather than constants in them.  Problems of the same structure (phases, mesh, burn
+kinds, objective, model kind and series degree) at any epoch therefore have the same key and load
+the same library; :func:`nlp_functions` binds this problem's values to it in small wrapper
+functions, so nlpsol sees an NLP without parameters, exactly as with interpreted evaluation, and
+the solver calls IPOPT the same way in both cases.  A library is compiled under a temporary name and renamed when complete, so no process
 ever loads a half-written file; a failed compile leaves a ``.failed`` note with the compiler's
 message and is not retried for that key.
 
 When: ``$SLINGBACK_COMPILE``
 
-* ``off`` (default): always interpreted.  A compile costs 2-4 minutes of CPU for one structure
-  (9.4 MB of C) and the start epoch is part of the structure, so a one-off solve never repays it.
+* ``off`` (default): always interpreted.  A compile costs minutes of CPU for one structure
+  (9.4 MB of C), so a one-off solve never repays it.
 * ``auto``: load the library if it exists; otherwise start the compiler in the background
   (one compile at a time per cache folder) and solve interpreted meanwhile; a later build of the same
   structure (the next run, or the next cache miss) uses the library.
@@ -37,6 +46,7 @@ import time
 from pathlib import Path
 
 import casadi as ca
+import numpy as np
 
 #: Flags of the shared library.  -O1: see the README's figures for compile time and speed-up.
 CFLAGS = ("-O1", "-fPIC", "-shared", "-pthread")
@@ -77,13 +87,20 @@ def compiler() -> str | None:
     return None
 
 
+def _parametric(tr) -> dict:
+    """The NLP with its parameter vector (``p`` empty for an NLP without parameters)."""
+    nlp = getattr(tr, "nlp_parametric", None)
+    return nlp if nlp is not None else {**tr.nlp, "p": ca.MX.sym("p", 0, 1)}
+
+
 def _defining(tr) -> list:
     """The objective and the constraints as functions of (x, p): what a library is keyed on."""
-    x, p = tr.nlp["x"], ca.MX.sym("p", 0, 1)
+    nlp = _parametric(tr)
+    x, p = nlp["x"], nlp["p"]
     # objective and constraints apart: IPOPT asks for them separately, and the objective alone is
     # a few operations while the constraints integrate every segment
-    fx = ca.Function("nlp_fx", [x, p], [tr.nlp["f"]], ["x", "p"], ["f"])
-    gx = ca.Function("nlp_gx", [x, p], [tr.nlp["g"]], ["x", "p"], ["g"])
+    fx = ca.Function("nlp_fx", [x, p], [nlp["f"]], ["x", "p"], ["f"])
+    gx = ca.Function("nlp_gx", [x, p], [nlp["g"]], ["x", "p"], ["g"])
     return [fx, gx]
 
 
@@ -91,10 +108,12 @@ def _functions(tr, hessian: bool, defining: list) -> list:
     """Everything the library holds, with the names and signatures nlpsol expects of user-given
     functions (only built when a library is to be generated: loading one needs none of this)."""
     fx, gx = defining
-    x, p = tr.nlp["x"], ca.MX.sym("p", 0, 1)
-    grad = ca.Function("nlp_grad_f", [x, p], [tr.nlp["f"], ca.gradient(tr.nlp["f"], x)],
+    nlp = _parametric(tr)
+    x, p = nlp["x"], nlp["p"]
+    grad = ca.Function("nlp_grad_f", [x, p], [nlp["f"], ca.gradient(nlp["f"], x)],
                        ["x", "p"], ["f", "grad_f_x"])
-    d = tr.derivative_functions(hessian=hessian)
+    d = tr.derivative_functions(hessian=hessian, parametric=True) if hasattr(tr, "nlp_parametric") \
+        else tr.derivative_functions(hessian=hessian)
     # nlpsol differentiates the NLP once when it is set up (the gradient of the Lagrangian, for the
     # multipliers it reports): the library carries the reverse derivatives under the names CasADi's
     # external functions look up ("adj1_<name>")
@@ -211,9 +230,22 @@ def nlp_functions(tr, hessian: bool = True, how: str | None = None):
         ext = _load(target, names)
     except RuntimeError as exc:  # a library that does not load is set aside, never retried as is
         return None, {**rec, "mode": "interpreted", "reason": f"library did not load: {exc}"}
-    x, p = ca.MX.sym("x", defining[0].size1_in(0)), ca.MX.sym("p", 0, 1)
-    nlp = ca.Function("nlp", [x, p], [ext["nlp_fx"](x, p), ext["nlp_gx"](x, p)], ["x", "p"], ["f", "g"])
-    out = {"nlp": nlp, "grad_f": ext["nlp_grad_f"], "jac_g": ext["nlp_jac_g"]}
+    return bind(ext, defining[0].size1_in(0), getattr(tr, "p_value", np.zeros(0)), hessian), \
+        {**rec, "mode": "compiled", "parameters": int(defining[0].numel_in(1))}
+
+
+def bind(ext: dict, nx: int, p_value, hessian: bool) -> dict:
+    """nlpsol's functions of an NLP without parameters: the library's functions with the parameter
+    input fixed to ``p_value`` (this problem's epoch and ephemeris).  Each is a small MX function
+    calling the compiled one; the library itself is shared by every problem of the structure."""
+    x, p0 = ca.MX.sym("x", nx), ca.MX.sym("p", 0, 1)
+    pv = ca.MX(ca.DM(np.asarray(p_value, dtype=float).reshape(-1, 1)))
+    out = {"nlp": ca.Function("nlp", [x, p0], [ext["nlp_fx"](x, pv), ext["nlp_gx"](x, pv)],
+                              ["x", "p"], ["f", "g"]),
+           "grad_f": ca.Function("nlp_grad_f", [x, p0], ext["nlp_grad_f"](x, pv), ["x", "p"], ["f", "grad_f_x"]),
+           "jac_g": ca.Function("nlp_jac_g", [x, p0], ext["nlp_jac_g"](x, pv), ["x", "p"], ["g", "jac_g_x"])}
     if hessian:
-        out["hess_lag"] = ext["nlp_hess_l"]
-    return out, {**rec, "mode": "compiled"}
+        lf, lg = ca.MX.sym("lam_f"), ca.MX.sym("lam_g", ext["nlp_hess_l"].size1_in(3))
+        out["hess_lag"] = ca.Function("nlp_hess_l", [x, p0, lf, lg], [ext["nlp_hess_l"](x, pv, lf, lg)],
+                                      ["x", "p", "lam_f", "lam_g"], ["triu_hess_gamma_x_x"])
+    return out
