@@ -10,18 +10,30 @@ the library is not built yet.
 Where: ``$SLINGBACK_CACHE_DIR`` if set, else ``$XDG_CACHE_HOME/slingback`` or ``~/.cache/slingback``;
 never inside the package.  Which library: the SHA-256 of everything the generated code depends on
 (CasADi's version, the compiler and its flags, the source of the transcription and of this module,
-and the serialised objective and constraint functions, which hold the model's numbers, the mesh and
-the layout).  A library is compiled under a temporary name and renamed when complete, so no process
+and the serialised objective and constraint functions, which hold the model's form, the mesh and
+the layout).
+
+What a library is shared by: the numbers that change with the epoch (start epoch, ephemeris window
+and Chebyshev coefficients, a circular Moon's orbit) are the NLP's parameter vector ``p``
+(``Transcription.nlp_parametric``, value ``Transcription.p_value``), inputs of the compiled
+functions rather than constants in them.  Problems of the same structure (phases, mesh, burn
+kinds, objective, model kind and series degree) at any epoch therefore have the same key and load
+the same library; :func:`nlp_functions` binds this problem's values to it in small wrapper
+functions, so nlpsol sees an NLP without parameters, exactly as with interpreted evaluation, and
+the solver calls IPOPT the same way in both cases.  A library is compiled under a temporary name and renamed when complete, so no process
 ever loads a half-written file; a failed compile leaves a ``.failed`` note with the compiler's
 message and is not retried for that key.
 
 When: ``$SLINGBACK_COMPILE``
 
-* ``off`` (default): always interpreted.  A compile costs 2-4 minutes of CPU for one structure
-  (9.4 MB of C) and the start epoch is part of the structure, so a one-off solve never repays it.
-* ``auto``: load the library if it exists; otherwise start the compiler in the background
-  (one compile at a time per cache folder) and solve interpreted meanwhile; a later build of the same
-  structure (the next run, or the next cache miss) uses the library.
+* ``auto`` (default): load the library if it exists; otherwise start the compiler in the
+  background (one compile at a time per cache folder) and solve interpreted meanwhile; a later
+  build of the same structure (the next run, or the next cache miss) uses the library.  Since a
+  library serves every epoch of its structure, the cache fills with the few structures a user
+  solves and the compile is paid once per machine (measured with ``bench_compiled.py``: 462 s of
+  wall for -O1 with the machine loaded, then 12x faster IPOPT iterations; repaid after ~6 solves).
+* ``off``: always interpreted (the test suite's setting, ``tests/conftest.py``: it solves many
+  structures once each and must not leave compilers running).
 * ``wait``: compile now if needed and use it (benchmarks, batch sweeps that will amortise it).
 """
 
@@ -37,8 +49,10 @@ import time
 from pathlib import Path
 
 import casadi as ca
+import numpy as np
 
-#: Flags of the shared library.  -O1: see the README's figures for compile time and speed-up.
+#: Flags of the shared library.  -O1: see the README's figures for compile time and speed-up;
+#: ``$SLINGBACK_CFLAGS`` replaces the optimisation flag (``-O0`` compiles ~10x faster: tests).
 CFLAGS = ("-O1", "-fPIC", "-shared", "-pthread")
 MODES = ("auto", "wait", "off")
 #: nlpsol options that go with compiled functions: the library holds no derivatives of its own
@@ -52,7 +66,7 @@ _LOADED: dict = {}  # library path -> {name: external Function}, per process
 
 def mode() -> str:
     """The compilation mode from ``$SLINGBACK_COMPILE`` (``auto``, ``wait`` or ``off``)."""
-    value = os.environ.get("SLINGBACK_COMPILE", "off").strip().lower() or "off"
+    value = os.environ.get("SLINGBACK_COMPILE", "auto").strip().lower() or "auto"
     if value in ("0", "no", "false", "none"):
         value = "off"
     if value not in MODES:
@@ -69,6 +83,12 @@ def cache_dir() -> Path:
     return Path(root) / f"nlp-casadi{ca.__version__}"
 
 
+def cflags() -> tuple:
+    """Compiler flags: ``CFLAGS`` with its optimisation flag replaced by ``$SLINGBACK_CFLAGS`` if set."""
+    extra = os.environ.get("SLINGBACK_CFLAGS", "").split()
+    return tuple(extra or CFLAGS[:1]) + CFLAGS[1:]
+
+
 def compiler() -> str | None:
     """The C compiler: ``$SLINGBACK_CC``, else ``gcc``, else ``cc`` on the PATH; None if none."""
     for name in (os.environ.get("SLINGBACK_CC"), "gcc", "cc"):
@@ -77,13 +97,20 @@ def compiler() -> str | None:
     return None
 
 
+def _parametric(tr) -> dict:
+    """The NLP with its parameter vector (``p`` empty for an NLP without parameters)."""
+    nlp = getattr(tr, "nlp_parametric", None)
+    return nlp if nlp is not None else {**tr.nlp, "p": ca.MX.sym("p", 0, 1)}
+
+
 def _defining(tr) -> list:
     """The objective and the constraints as functions of (x, p): what a library is keyed on."""
-    x, p = tr.nlp["x"], ca.MX.sym("p", 0, 1)
+    nlp = _parametric(tr)
+    x, p = nlp["x"], nlp["p"]
     # objective and constraints apart: IPOPT asks for them separately, and the objective alone is
     # a few operations while the constraints integrate every segment
-    fx = ca.Function("nlp_fx", [x, p], [tr.nlp["f"]], ["x", "p"], ["f"])
-    gx = ca.Function("nlp_gx", [x, p], [tr.nlp["g"]], ["x", "p"], ["g"])
+    fx = ca.Function("nlp_fx", [x, p], [nlp["f"]], ["x", "p"], ["f"])
+    gx = ca.Function("nlp_gx", [x, p], [nlp["g"]], ["x", "p"], ["g"])
     return [fx, gx]
 
 
@@ -91,10 +118,12 @@ def _functions(tr, hessian: bool, defining: list) -> list:
     """Everything the library holds, with the names and signatures nlpsol expects of user-given
     functions (only built when a library is to be generated: loading one needs none of this)."""
     fx, gx = defining
-    x, p = tr.nlp["x"], ca.MX.sym("p", 0, 1)
-    grad = ca.Function("nlp_grad_f", [x, p], [tr.nlp["f"], ca.gradient(tr.nlp["f"], x)],
+    nlp = _parametric(tr)
+    x, p = nlp["x"], nlp["p"]
+    grad = ca.Function("nlp_grad_f", [x, p], [nlp["f"], ca.gradient(nlp["f"], x)],
                        ["x", "p"], ["f", "grad_f_x"])
-    d = tr.derivative_functions(hessian=hessian)
+    d = tr.derivative_functions(hessian=hessian, parametric=True) if hasattr(tr, "nlp_parametric") \
+        else tr.derivative_functions(hessian=hessian)
     # nlpsol differentiates the NLP once when it is set up (the gradient of the Lagrangian, for the
     # multipliers it reports): the library carries the reverse derivatives under the names CasADi's
     # external functions look up ("adj1_<name>")
@@ -103,7 +132,7 @@ def _functions(tr, hessian: bool, defining: list) -> list:
 
 def _key(cc: str, defining: list, hessian: bool) -> str:
     h = hashlib.sha256()
-    for part in (ca.__version__, sys.platform, cc, " ".join(CFLAGS), str(hessian)):
+    for part in (ca.__version__, sys.platform, cc, " ".join(cflags()), str(hessian)):
         h.update(part.encode() + b"\0")
     for path in _SOURCES:
         h.update(path.read_bytes())
@@ -120,7 +149,7 @@ def _compile(cc: str, source: str, target: Path) -> None:
         fh.write(source)
     tmp = target.with_name(f"{target.stem}.{os.getpid()}.tmp.so")
     try:
-        run = subprocess.run([cc, *CFLAGS, "-o", str(tmp), c_path, "-lm"], capture_output=True, text=True)
+        run = subprocess.run([cc, *cflags(), "-o", str(tmp), c_path, "-lm"], capture_output=True, text=True)
         if run.returncode != 0:
             target.with_suffix(".failed").write_text(run.stderr[-4000:])
             raise RuntimeError(f"{cc} failed: {run.stderr.strip()[-300:]}")
@@ -153,7 +182,7 @@ def _start_background(cc: str, source: str, target: Path) -> bool:
         fh.write(source)
     tmp = target.with_name(f"{target.stem}.bg.tmp.so")
     # $0 compiler, $1 temporary library, $2 source, $3 library, $4 failure note, $5 lock
-    script = (f'if "$0" {" ".join(CFLAGS)} -o "$1" "$2" -lm 2> "$1.log"; then mv -f "$1" "$3"; '
+    script = (f'if "$0" {" ".join(cflags())} -o "$1" "$2" -lm 2> "$1.log"; then mv -f "$1" "$3"; '
               f'else mv -f "$1.log" "$4"; fi; rm -f "$1" "$1.log" "$2" "$5"')
     subprocess.Popen(["sh", "-c", script, cc, str(tmp), c_path, str(target), str(target.with_suffix(".failed")),
                       str(lock)], stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
@@ -211,9 +240,22 @@ def nlp_functions(tr, hessian: bool = True, how: str | None = None):
         ext = _load(target, names)
     except RuntimeError as exc:  # a library that does not load is set aside, never retried as is
         return None, {**rec, "mode": "interpreted", "reason": f"library did not load: {exc}"}
-    x, p = ca.MX.sym("x", defining[0].size1_in(0)), ca.MX.sym("p", 0, 1)
-    nlp = ca.Function("nlp", [x, p], [ext["nlp_fx"](x, p), ext["nlp_gx"](x, p)], ["x", "p"], ["f", "g"])
-    out = {"nlp": nlp, "grad_f": ext["nlp_grad_f"], "jac_g": ext["nlp_jac_g"]}
+    return bind(ext, defining[0].size1_in(0), getattr(tr, "p_value", np.zeros(0)), hessian), \
+        {**rec, "mode": "compiled", "parameters": int(defining[0].numel_in(1))}
+
+
+def bind(ext: dict, nx: int, p_value, hessian: bool) -> dict:
+    """nlpsol's functions of an NLP without parameters: the library's functions with the parameter
+    input fixed to ``p_value`` (this problem's epoch and ephemeris).  Each is a small MX function
+    calling the compiled one; the library itself is shared by every problem of the structure."""
+    x, p0 = ca.MX.sym("x", nx), ca.MX.sym("p", 0, 1)
+    pv = ca.MX(ca.DM(np.asarray(p_value, dtype=float).reshape(-1, 1)))
+    out = {"nlp": ca.Function("nlp", [x, p0], [ext["nlp_fx"](x, pv), ext["nlp_gx"](x, pv)],
+                              ["x", "p"], ["f", "g"]),
+           "grad_f": ca.Function("nlp_grad_f", [x, p0], ext["nlp_grad_f"](x, pv), ["x", "p"], ["f", "grad_f_x"]),
+           "jac_g": ca.Function("nlp_jac_g", [x, p0], ext["nlp_jac_g"](x, pv), ["x", "p"], ["g", "jac_g_x"])}
     if hessian:
-        out["hess_lag"] = ext["nlp_hess_l"]
-    return out, {**rec, "mode": "compiled"}
+        lf, lg = ca.MX.sym("lam_f"), ca.MX.sym("lam_g", ext["nlp_hess_l"].size1_in(3))
+        out["hess_lag"] = ca.Function("nlp_hess_l", [x, p0, lf, lg], [ext["nlp_hess_l"](x, pv, lf, lg)],
+                                      ["x", "p", "lam_f", "lam_g"], ["triu_hess_gamma_x_x"])
+    return out

@@ -9,8 +9,13 @@ Every model offers the same duck-typed interface:
 
 ``moon(t)``, ``sun(t)``
     numpy positions: shape (3,) for a scalar ``t``, shape (3, N) for a 1-D array of N epochs.
-``moon_casadi(t)``, ``sun_casadi(t)``
+``moon_casadi(t, par=None)``, ``sun_casadi(t, par=None)``
     the same positions as CasADi 3x1 expressions of a symbolic (SX/MX) or numeric ``t``.
+``casadi_parameters()``
+    the numbers the CasADi expressions depend on (window, coefficients, orbit), as one vector;
+    given a symbolic vector ``par`` of that length, ``moon_casadi``/``sun_casadi`` read them from
+    it instead of writing them into the expression, so one compiled NLP serves every epoch
+    (``optimizer/compiled.py``).  Without ``par`` the numbers are written in, as before.
 ``describe()``
     a JSON-serialisable dict naming the model and its settings, for output files.
 
@@ -123,13 +128,13 @@ class DE421:
         """Geocentric Moon velocity, km/s, shaped like ``moon(t)``."""
         return self.moon_state(t)[1]
 
-    def moon_casadi(self, t):
+    def moon_casadi(self, t, par=None):
         raise NotImplementedError(
             "DE421 has no CasADi form; fit it over the scenario window with "
             "ChebyshevEphemeris.fit(DE421(), t_start, t_end) and use that fit's moon_casadi"
         )
 
-    def sun_casadi(self, t):
+    def sun_casadi(self, t, par=None):
         raise NotImplementedError(
             "DE421 has no CasADi form; fit it over the scenario window with "
             "ChebyshevEphemeris.fit(DE421(), t_start, t_end) and use that fit's sun_casadi"
@@ -196,28 +201,41 @@ def _clenshaw_scalar(rows, c0, x: float) -> np.ndarray:
     return np.array((c0[0] + x * ax - bx, c0[1] + x * ay - by, c0[2] + x * az - bz))
 
 
-def _clenshaw_casadi(c: np.ndarray, x):
+def _clenshaw_casadi(c, x):
     """Chebyshev series ``sum_k c[k] T_k(x)`` as a CasADi 3x1 expression of a scalar ``x``.
 
-    Written on the basis values ``T_k(x)`` (three-term recurrence, stable on [-1, 1]) rather than
-    by Clenshaw's recurrence: two series of the same ``x`` (Moon and Sun) then share the basis
-    after CasADi's common-subexpression pass, and each term costs a multiply-add.  Measured on
-    the DE421 fit of ``tests/benchmarks/bench_abort.py`` (Moon degree 20, Sun 16): the NLP's
-    segment Jacobian 23 % and Hessian 26 % cheaper with the transcription's shared distances.
+    ``c`` is an (n, 3) array of numbers, or an (n, 3) CasADi matrix of symbols (the coefficients
+    as NLP parameters).  Written on the basis values ``T_k(x)`` (three-term recurrence, stable on
+    [-1, 1]) rather than by Clenshaw's recurrence: two series of the same ``x`` (Moon and Sun) then
+    share the basis after CasADi's common-subexpression pass, and each term costs a multiply-add.
+    Measured on the DE421 fit of ``tests/benchmarks/bench_abort.py`` (Moon degree 20, Sun 16): the
+    NLP's segment Jacobian 23 % and Hessian 26 % cheaper with the transcription's shared distances.
     """
     import casadi as ca
 
-    c = np.asarray(c, dtype=float)
+    numeric = not isinstance(c, (ca.SX, ca.MX))
+    if numeric:
+        c = np.asarray(c, dtype=float)
+    n = c.shape[0]
     basis = [1.0, x]
-    for _ in range(2, c.shape[0]):
+    for _ in range(2, n):
         basis.append(2.0 * x * basis[-1] - basis[-2])
     out = []
     for comp in range(3):
-        acc = ca.DM(c[0, comp]) if c.shape[0] == 1 else c[0, comp] + c[1, comp] * x
-        for k in range(2, c.shape[0]):
+        if n == 1:
+            acc = ca.DM(c[0, comp]) if numeric else c[0, comp]
+        else:
+            acc = c[0, comp] + c[1, comp] * x
+        for k in range(2, n):
             acc = acc + c[k, comp] * basis[k]
         out.append(acc)
     return ca.vertcat(*out)
+
+
+#: Degree of the series the NLP carries as parameters: the fit's degree rounded up to a multiple
+#: of this, the extra coefficients zero, so that fits of windows at other epochs (whose degrees
+#: differ by a step of the fit's ladder, 4) give the same compiled functions.
+PARAMETER_DEGREE_STEP = 8
 
 
 _DOT = np.dot
@@ -419,18 +437,52 @@ class ChebyshevEphemeris:
         return self._eval(self._moon, self._x(t), derivative=True)
 
     # -- CasADi evaluation -------------------------------------------------------------------
-    def moon_casadi(self, t):
+    def _parameter_degree(self) -> int:
+        deg = max(self.degree.values())
+        return -(-deg // PARAMETER_DEGREE_STEP) * PARAMETER_DEGREE_STEP
+
+    def casadi_parameters(self) -> np.ndarray:
+        """The numbers of :meth:`moon_casadi` and :meth:`sun_casadi` as one vector: the window's
+        middle and inverse half-length, then the Moon's and (if fitted) the Sun's coefficients,
+        each padded with zeros to one degree (the largest, rounded up to a multiple of
+        ``PARAMETER_DEGREE_STEP``) and laid out row by row (degree 0 x, y, z, degree 1 ...)."""
+        n = self._parameter_degree() + 1
+        parts = [np.array([self._mid, self._inv_half])]
+        for series in (self._moon, self._sun):
+            if series is not None:
+                c = np.zeros((n, 3))
+                c[: series.degree + 1] = series.coeffs
+                parts.append(c.ravel())
+        return np.concatenate(parts)
+
+    def _par_series(self, par, body):
+        """(normalised-time scale, coefficient matrix) of ``body`` read from the symbols ``par``."""
+        import casadi as ca
+
+        n = self._parameter_degree() + 1
+        start = 2 + (3 * n if body == "sun" else 0)
+        coeffs = ca.reshape(par[start:start + 3 * n], 3, n).T  # rows: degrees
+        return par[0], par[1], coeffs
+
+    def moon_casadi(self, t, par=None):
         """Moon position, km, as a CasADi 3x1 expression of ``t`` (SX/MX scalar or float).
 
-        No window check is possible for a symbolic ``t``; outside the window the series
-        extrapolates and quickly loses accuracy.
+        With ``par`` (symbols shaped like :meth:`casadi_parameters`) the window and coefficients
+        are read from it.  No window check is possible for a symbolic ``t``; outside the window the
+        series extrapolates and quickly loses accuracy.
         """
+        if par is not None:
+            mid, inv_half, c = self._par_series(par, "moon")
+            return _clenshaw_casadi(c, (t - mid) * inv_half)
         return _clenshaw_casadi(self._moon.coeffs, (t - self._mid) * self._inv_half)
 
-    def sun_casadi(self, t):
+    def sun_casadi(self, t, par=None):
         """Sun position, km, as a CasADi 3x1 expression of ``t``; ``None`` if not fitted."""
         if self._sun is None:
             return None
+        if par is not None:
+            mid, inv_half, c = self._par_series(par, "sun")
+            return _clenshaw_casadi(c, (t - mid) * inv_half)
         return _clenshaw_casadi(self._sun.coeffs, (t - self._mid) * self._inv_half)
 
     # -- metadata ----------------------------------------------------------------------------
@@ -538,10 +590,18 @@ class CircularMoon:
         return self.radius_km * self.rate * (np.multiply.outer(self._Q, np.cos(u))
                                              - np.multiply.outer(self._P, np.sin(u)))
 
-    def moon_casadi(self, t):
-        """Moon position, km, as a CasADi 3x1 expression of ``t`` (SX/MX scalar or float)."""
+    def casadi_parameters(self) -> np.ndarray:
+        """The numbers of :meth:`moon_casadi`: radius, rate, phase, epoch, then P and Q (3 each)."""
+        return np.r_[self.radius_km, self.rate, self._phase, self.epoch, self._P, self._Q]
+
+    def moon_casadi(self, t, par=None):
+        """Moon position, km, as a CasADi 3x1 expression of ``t`` (SX/MX scalar or float); with
+        ``par`` (symbols shaped like :meth:`casadi_parameters`) the orbit is read from it."""
         import casadi as ca
 
+        if par is not None:
+            u = par[2] + par[1] * (t - par[3])
+            return par[0] * (par[4:7] * ca.cos(u) + par[7:10] * ca.sin(u))
         u = self._phase + self.rate * (t - self.epoch)
         return self.radius_km * (ca.DM(self._P) * ca.cos(u) + ca.DM(self._Q) * ca.sin(u))
 
@@ -549,7 +609,7 @@ class CircularMoon:
         """No Sun in this model: ``None``."""
         return None
 
-    def sun_casadi(self, t):
+    def sun_casadi(self, t, par=None):
         """No Sun in this model: ``None``."""
         return None
 

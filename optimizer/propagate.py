@@ -5,10 +5,17 @@ it never imports CasADi nor anything that builds the NLP (a test enforces this).
 
 Epochs and states are in the model's units (km, km/s, TDB seconds past J2000 for the
 Earth-centred models).  Burns are impulsive: a velocity change in the model frame at an epoch.
+
+Two engines take the same DOP853 steps: ``"scipy"`` (``solve_ivp`` on the model's numpy
+right-hand side; always available) and ``"c"`` (:mod:`optimizer.native`: the whole coast stepped
+in a small hand-written C file, the same events found by scipy's own event search on the dense
+output; Earth-centred models only, scipy serves the others and machines without a C compiler).
+``$SLINGBACK_PROPAGATOR`` chooses the default (``scipy`` unless set).
 """
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -19,6 +26,15 @@ VERIFY_RTOL = 1e-12
 VERIFY_ATOL = 1e-12
 
 EVENT_NAMES = ("perilune", "perigee", "entry", "impact_earth", "impact_moon")
+ENGINES = ("scipy", "c")
+
+
+def default_engine() -> str:
+    """The engine from ``$SLINGBACK_PROPAGATOR`` (``scipy`` or ``c``; ``scipy`` if unset)."""
+    value = os.environ.get("SLINGBACK_PROPAGATOR", "scipy").strip().lower() or "scipy"
+    if value not in ENGINES:
+        raise ValueError(f"SLINGBACK_PROPAGATOR={value!r}: expected one of {', '.join(ENGINES)}")
+    return value
 
 
 @dataclass(frozen=True)
@@ -56,6 +72,8 @@ class Arc:
         ``"completed"`` or ``"stopped at <event>"``.
     nfev : int
         Right-hand-side evaluations.
+    engine : str
+        ``"scipy"`` or ``"c"``: which engine stepped the coast.
     """
 
     t: np.ndarray
@@ -64,6 +82,7 @@ class Arc:
     status: str
     nfev: int
     sol: object = field(default=None, repr=False)
+    engine: str = "scipy"
 
     def state(self, t):
         """Dense-output state at epoch(s) ``t`` (shape (6,) or (6, M))."""
@@ -146,7 +165,7 @@ def _event_functions(model, names, entry_radius, terminal, backward=False, peril
 def propagate(model, t0: float, y0, t1: float, *, events=(), entry_radius: float | None = None,
               terminal=("entry",), rtol: float = VERIFY_RTOL, atol: float = VERIFY_ATOL,
               max_step: float = np.inf, perilune_within: float | None = None,
-              perigee_within: float | None = None) -> Arc:
+              perigee_within: float | None = None, engine: str | None = None) -> Arc:
     """Propagate a coast with DOP853 and find events on the way.
 
     Parameters
@@ -168,6 +187,9 @@ def propagate(model, t0: float, y0, t1: float, *, events=(), entry_radius: float
         minimum of lunar distance.
     perigee_within : float, optional
         The same for perigees (km from Earth's centre).
+    engine : str, optional
+        ``"scipy"`` or ``"c"`` (default :func:`default_engine`); ``"c"`` falls back to scipy for
+        a model or machine it cannot serve (the arc's ``engine`` says which ran).
 
     Returns
     -------
@@ -180,8 +202,18 @@ def propagate(model, t0: float, y0, t1: float, *, events=(), entry_radius: float
         raise ValueError(f"need two different finite epochs, got t0={t0!r}, t1={t1!r}")
     funcs, labels = _event_functions(model, events, entry_radius, set(terminal), backward=t1 < t0,
                                      perilune_within=perilune_within, perigee_within=perigee_within)
-    sol = solve_ivp(model.rhs, (t0, t1), y0, method="DOP853", rtol=rtol, atol=atol,
-                    dense_output=True, events=funcs or None, max_step=max_step)
+    engine = engine or default_engine()
+    if engine not in ENGINES:
+        raise ValueError(f"unknown engine {engine!r}; expected one of {', '.join(ENGINES)}")
+    if engine == "c":
+        from . import native
+
+        engine = "c" if native.supports(model) else "scipy"
+    if engine == "c":
+        sol = native.integrate(model, t0, y0, t1, rtol=rtol, atol=atol, max_step=max_step, events=funcs or None)
+    else:
+        sol = solve_ivp(model.rhs, (t0, t1), y0, method="DOP853", rtol=rtol, atol=atol,
+                        dense_output=True, events=funcs or None, max_step=max_step)
     if sol.status < 0:
         raise RuntimeError(f"propagation failed at t={sol.t[-1]!r}: {sol.message}")
     found = []
@@ -193,7 +225,7 @@ def propagate(model, t0: float, y0, t1: float, *, events=(), entry_radius: float
     if sol.status == 1:
         status = "stopped at " + next(
             lbl for lbl, te, fn in zip(labels, sol.t_events, funcs) if fn.terminal and len(te))
-    return Arc(sol.t, sol.y, found, status, int(sol.nfev), sol.sol)
+    return Arc(sol.t, sol.y, found, status, int(sol.nfev), sol.sol, engine)
 
 
 def propagate_burns(model, t0: float, y0, burns, t1: float, **kwargs) -> list[Arc]:

@@ -28,6 +28,14 @@ Reading order (the order the NLP is built in :meth:`Transcription.__init__`):
 Everything inside is in scaled units: length ``LU`` (384400 km), time ``TU`` (so that
 ``GM_E + GM_M = 1``), epochs measured from the start epoch.  Burn and arrival windows are bounds,
 so one built transcription can be re-solved with other windows (trade studies) without rebuilding.
+
+**Parameters.** The numbers that change with the epoch (the start epoch ``t_ref`` and the force
+model's ephemeris: Chebyshev window and coefficients, or the circular Moon's orbit) enter the
+expressions as a parameter vector ``p`` (``self.p``, value ``self.p_value``), not as constants:
+two problems of the same structure (phases, mesh, burn kinds, model kind and series degree) have
+the same parametric functions, so one compiled library serves both (``optimizer/compiled.py``).
+``self.nlp`` is the parameter-free NLP (``p`` replaced by its value) that nlpsol and the tests
+use; ``self.nlp_parametric`` keeps ``p``.
 """
 
 from __future__ import annotations
@@ -164,6 +172,8 @@ class Transcription:
         self.steps = [int(m) for m in steps]
         self.segments = int(segments)
         self.sc = Scaling.earth_moon(problem.start_epoch)
+        self.p_value = np.r_[self.sc.t_ref, np.asarray(model.casadi_parameters(), dtype=float)]
+        self.p = ca.MX.sym("p", self.p_value.size)
         self._segments = {}
         self._shots = []  # (phase index, node block, s-length, stand-in W of the segment ends)
         self._body_functions()
@@ -178,36 +188,45 @@ class Transcription:
         self._add_spacing(v)
         self._set_objective(v)
         x, self._g_w = ca.vertcat(*v.x), ca.vertcat(*v.g)
-        ends = [self._mapped(self.steps[k])(nodes[:, :-1], ca.repmat(slen / self.segments, 1, self.segments))
+        ends = [self._mapped(self.steps[k])(nodes[:, :-1], ca.repmat(slen / self.segments, 1, self.segments),
+                                            self.p)
                 for k, nodes, slen, _ in self._shots]
         g = ca.substitute([self._g_w], [w for *_, w in self._shots], ends)[0]
-        self.nlp = {"x": x, "f": self.f, "g": g}
+        self.nlp_parametric = {"x": x, "p": self.p, "f": self.f, "g": g}
+        self.nlp = {"x": x, "f": self.f, "g": self.fix_parameters(g)}
         self.lbx, self.ubx = np.concatenate(v.lbx), np.concatenate(v.ubx)
         self.x0 = np.concatenate(v.x0)
         self.lbg, self.ubg = np.concatenate(v.lbg), np.concatenate(v.ubg)
 
+    def fix_parameters(self, expr):
+        """``expr`` (MX) with the parameter vector replaced by this problem's values."""
+        return ca.substitute([expr], [self.p], [ca.MX(ca.DM(self.p_value))])[0]
+
     # -- dynamics ------------------------------------------------------------------------------
     def _body_functions(self):
-        """Scaled Moon position/velocity, right-hand side in ``s``, and one RK8 step."""
+        """Scaled Moon position/velocity, right-hand side in ``s``, and one RK8 step; each takes
+        the parameter vector (start epoch, then the model's numbers) as its last input."""
         sc, model = self.sc, self.model
+        par = ca.SX.sym("p", self.p_value.size)
+        t_ref, mpar = par[0], (par[1:] if self.p_value.size > 1 else None)
         tau = ca.SX.sym("tau")
-        t_phys = sc.t_ref + sc.tu * tau
-        rm = model.moon_position_casadi(t_phys) / sc.lu
+        t_phys = t_ref + sc.tu * tau
+        rm = model.moon_position_casadi(t_phys, par=mpar) / sc.lu
         vm = ca.jacobian(rm, tau)  # d(rm)/d(tau) is already the scaled velocity
-        self.moon_fn = ca.Function("moon", [tau], [rm, vm])
+        self.moon_fn = ca.Function("moon", [tau, par], [rm, vm])
 
         z = ca.SX.sym("z", 7)
         r, vel, tz = z[0:3], z[3:6], z[6]
-        t_phys = sc.t_ref + sc.tu * tz
+        t_phys = t_ref + sc.tu * tz
         r_km = r * sc.lu
-        acc = model.acceleration_casadi(t_phys, r_km, vel * sc.vu) * (sc.tu**2 / sc.lu)
+        acc = model.acceleration_casadi(t_phys, r_km, vel * sc.vu, par=mpar) * (sc.tu**2 / sc.lu)
         # omega^2 from the same separations as the acceleration (physical units, then scaled), so
         # that the common-subexpression pass below evaluates each distance once
-        dm = r_km - model.moon_position_casadi(t_phys)
+        dm = r_km - model.moon_position_casadi(t_phys, par=mpar)
         omega2 = (model.gm_earth * inv_cube_casadi(r_km) + model.gm_moon * inv_cube_casadi(dm)) * sc.tu**2
         dtds = 1.0 / ca.sqrt(omega2)
-        self.dtds_fn = ca.Function("dtds", [z], [dtds])
-        rhs = ca.Function("rhs", [z], [ca.cse(ca.vertcat(vel * dtds, acc * dtds, dtds))])
+        self.dtds_fn = ca.Function("dtds", [z, par], [dtds])
+        rhs = ca.Function("rhs", [z, par], [ca.cse(ca.vertcat(vel * dtds, acc * dtds, dtds))])
 
         h = ca.SX.sym("h")
         k = []
@@ -216,9 +235,9 @@ class Transcription:
             for j in range(i):
                 if _RK_A[i, j] != 0.0:
                     zi = zi + h * _RK_A[i, j] * k[j]
-            k.append(rhs(zi))
+            k.append(rhs(zi, par))
         z_next = z + h * sum(_RK_B[i] * k[i] for i in range(12) if _RK_B[i] != 0.0)
-        self.step_fn = ca.Function("rk8_step", [z, h], [z_next])
+        self.step_fn = ca.Function("rk8_step", [z, h, par], [z_next])
 
     def segment_function(self, steps: int) -> ca.Function:
         """``M`` RK8 steps of length ``h / M``, expanded to SX; one Function per step count, shared
@@ -228,10 +247,12 @@ class Transcription:
             return cached
         z = ca.SX.sym("z", 7)
         h = ca.SX.sym("h")
+        par = ca.SX.sym("p", self.p_value.size)
         zz = z
         for _ in range(steps):
-            zz = self.step_fn(zz, h / steps)
-        fn = ca.Function(f"segment{steps}", [z, h], [ca.cse(ca.Function("s", [z, h], [zz]).expand()(z, h))])
+            zz = self.step_fn(zz, h / steps, par)
+        fn = ca.Function(f"segment{steps}", [z, h, par],
+                         [ca.cse(ca.Function("s", [z, h, par], [zz]).expand()(z, h, par))])
         self._segments[steps] = fn
         return fn
 
@@ -340,7 +361,7 @@ class Transcription:
         model, sc = self.model, self.sc
         p = next(p for p in self.phases if p.end == "perilune")
         z = self.nodes[p.index][:, -1]
-        rm, vm = self.moon_fn(z[6])
+        rm, vm = self.moon_fn(z[6], self.p)
         d, w = z[0:3] - rm, z[3:6] - vm
         lo, hi = self.problem.lunar.altitude_km
         rho = lambda alt: ((model.moon.radius + alt) / sc.lu) ** 2  # noqa: E731
@@ -392,7 +413,7 @@ class Transcription:
         for p, nodes in zip(self.phases, self.nodes):
             inner = nodes[:, :-1] if p.end == "arrival" else nodes
             n = inner.shape[1]
-            moon = self.moon_fn.map(n)(inner[6, :])[0]
+            moon = self.moon_fn.map(n)(inner[6, :], self.p)[0]
             v.con(f"clear_earth{p.index}", ca.sum1(inner[0:3, :] ** 2), re2, np.inf)
             v.con(f"clear_moon{p.index}", ca.sum1((inner[0:3, :] - moon) ** 2), rm2, np.inf)
 
@@ -435,10 +456,11 @@ class Transcription:
         if key not in self._segments:
             seg = self.segment_function(steps)
             z, h, mu = ca.SX.sym("z", 7), ca.SX.sym("h"), ca.SX.sym("mu", 7)
+            par = ca.SX.sym("p", self.p_value.size)
             zh = ca.vertcat(z, h)
-            end = seg(z, h)
-            jac = ca.Function(f"segment{steps}_jac", [z, h], [end, ca.jacobian(end, zh)])
-            hess = ca.Function(f"segment{steps}_hess", [z, h, mu],
+            end = seg(z, h, par)
+            jac = ca.Function(f"segment{steps}_jac", [z, h, par], [end, ca.jacobian(end, zh)])
+            hess = ca.Function(f"segment{steps}_hess", [z, h, mu, par],
                                [ca.triu(ca.hessian(ca.dot(mu, end), zh)[0])])
             self._segments[key] = (jac.map(self.segments, MAP_MODE, self.threads),
                                    hess.map(self.segments, MAP_MODE, self.threads))
@@ -480,14 +502,18 @@ class Transcription:
             start += m
         return ca.sparsity_cast(total, sparsity)
 
-    def derivative_functions(self, hessian: bool = True) -> dict:
+    def derivative_functions(self, hessian: bool = True, parametric: bool = False) -> dict:
         """``jac_g`` and (when ``hessian``) ``hess_lag`` for CasADi's nlpsol, exact, assembled per
         segment: the integration enters the constraints only through the defects, linearly in the
         segment ends W; so dg/dx = dg/dx|W + dg/dW dW/dx and the Lagrangian's Hessian is that of
         the W-free part plus, per segment, the Hessian of (its defect multipliers)' W.  Each
         segment's 7 x 8 Jacobian and 8 x 8 Hessian are SX functions mapped over the coast (in
-        threads), instead of CasADi's colouring of the whole MX graph."""
-        key = ("nlp derivatives", hessian)
+        threads), instead of CasADi's colouring of the whole MX graph.
+
+        With ``parametric`` the functions' input ``p`` is the parameter vector (``self.p``, for a
+        library shared across epochs); otherwise ``p`` is empty and this problem's values are
+        written in (what nlpsol takes with ``self.nlp``)."""
+        key = ("nlp derivatives", hessian, parametric)
         if key in self._segments:
             return self._segments[key]
         x, g_w, n = self.nlp["x"], self._g_w, self.segments
@@ -499,7 +525,7 @@ class Transcription:
         for k, nodes, slen, _ in self._shots:
             jac_map, hess_map = self._segment_derivatives(self.steps[k])
             hs = ca.repmat(slen / n, 1, n)
-            end, jmat = jac_map(nodes[:, :-1], hs)
+            end, jmat = jac_map(nodes[:, :-1], hs, self.p)
             ends.append(end)
             # W enters only its coast's defects, as +W (``_add_phases``): entry (i, s) of W is
             # constraint row start + 7 s + i
@@ -512,7 +538,7 @@ class Transcription:
             jparts.append((ca.vec(jmat), rows, cols, np.where(a == 7, 1.0 / n, 1.0)))
             if hessian:
                 mu = ca.reshape(lam_g[rows_w], 7, n)
-                hmat = hess_map(nodes[:, :-1], hs, mu)
+                hmat = hess_map(nodes[:, :-1], hs, mu, self.p)
                 hr, hc = hmat.sparsity().get_triplet()
                 hr, hc = np.asarray(hr), np.asarray(hc)
                 ss, hb = hc // 8, hc % 8
@@ -521,13 +547,13 @@ class Transcription:
                 wts = (1.0 / n) ** ((hr == 7).astype(int) + (hb == 7).astype(int))
                 hparts.append((hmat.nz[:], rows, cols, wts))
         g = ca.substitute([g_w], ws, ends)[0]
-        p = ca.MX.sym("p", 0, 1)
         jac = self._assemble((ng, nx), jparts)
-        out = {"jac_g": ca.Function("nlp_jac_g", [x, p], [g, jac], ["x", "p"], ["g", "jac_g_x"])}
+        p, fix = (self.p, lambda e: e) if parametric else (ca.MX.sym("p", 0, 1), self.fix_parameters)
+        out = {"jac_g": ca.Function("nlp_jac_g", [x, p], [fix(g), fix(jac)], ["x", "p"], ["g", "jac_g_x"])}
         if hessian:
             lag = lam_f * self.f + ca.dot(lam_g, g_w)
             hess = self._assemble((nx, nx), [self._part(ca.triu(ca.hessian(lag, x)[0]))] + hparts, triu=True)
-            out["hess_lag"] = ca.Function("nlp_hess_l", [x, p, lam_f, lam_g], [hess],
+            out["hess_lag"] = ca.Function("nlp_hess_l", [x, p, lam_f, lam_g], [fix(hess)],
                                           ["x", "p", "lam_f", "lam_g"], ["triu_hess_gamma_x_x"])
         self._segments[key] = out
         return out

@@ -105,3 +105,93 @@ def test_library_key_changes_with_the_objective_and_the_constraints():
     keys = {compiled._key(cc, compiled._defining(t), True) for t in (base, other_f, other_g)}
     assert len(keys) == 3
     assert compiled._key(cc, compiled._defining(HS71()), True) in keys  # and it is stable
+
+
+# --- one library for every start epoch -----------------------------------------------------------
+# The invented abort case of tests/test_optimizer.py (a ballistic free return through a 150 km
+# perilune at 2027-05-13 12:00 TDB, found by root-finding on the independent propagator; 10 m/s
+# along the velocity spoils it; one burn 1-12 h later restores it), picked up at two start epochs
+# 6 h apart: two problems of one structure whose epochs, ephemeris fits and answers differ.
+HOUR, DAY = 3600.0, 86400.0
+
+
+@pytest.fixture(scope="module")
+def two_epochs():
+    import free_return_fixture as fr
+    from optimizer.models import build_model
+    from optimizer.problem import BurnSpec, LunarPass, ModelSpec, Problem, ReturnSpec, StateStart
+    from optimizer.propagate import propagate
+    from optimizer.timescales import parse_epoch
+
+    t_p = parse_epoch("2027-05-13T12:00:00 TDB")
+    seed_model = build_model(ModelSpec(), t_p - 6 * DAY, t_p + 12 * DAY)
+    y_peri, alts, _ = fr.build(seed_model, t_p, alt_km=150.0)
+    assert np.allclose(alts, [200.0, 40.0], atol=1.0)  # the root-finding did its job
+    problems = []
+    for hours in (40.0, 34.0):
+        t0 = t_p - hours * HOUR
+        y = propagate(seed_model, t_p, y_peri, t0).y[:, -1].copy()
+        y[3:] += 10e-3 * y[3:] / np.linalg.norm(y[3:])
+        problems.append(Problem(name=f"abort-{hours:g}h", start=StateStart(t0, tuple(y)),
+                                burns=(BurnSpec((t0 + HOUR, t0 + 12 * HOUR), 300.0),),
+                                lunar=LunarPass((100.0, 5000.0)), arrival=ReturnSpec(flight_path_deg=(-7.0, -5.5))))
+    return problems
+
+
+def test_parametric_acceleration_matches_the_numpy_model_at_two_epochs(two_epochs):
+    # the CasADi acceleration reading its ephemeris from a parameter vector against the separately
+    # written numpy acceleration (DE421 fit: Earth, Moon, Sun; circular Moon): a wrong layout of
+    # the coefficients or window in the vector moves the Moon by thousands of km
+    from optimizer.models import build_model
+    from optimizer.problem import ModelSpec
+    from optimizer.solver import model_span
+
+    rng = np.random.default_rng(14)
+    for kind in ("ephemeris", "earth-moon"):
+        pars = []
+        for prob in two_epochs:
+            model = build_model(ModelSpec(kind=kind), *model_span(prob))
+            t, r, par = ca.SX.sym("t"), ca.SX.sym("r", 3), ca.SX.sym("p", model.casadi_parameters().size)
+            fn = ca.Function("acc", [t, r, par], [model.acceleration_casadi(t, r, None, par=par),
+                                                  model.moon_position_casadi(t, par=par)])
+            pars.append(model.casadi_parameters())
+            lo, hi = model_span(prob)
+            for _ in range(20):
+                tt = rng.uniform(lo, hi)
+                rr = rng.normal(size=3) * 2e5
+                acc, moon = (np.asarray(a).ravel() for a in fn(tt, rr, pars[-1]))
+                assert acc == pytest.approx(model.acceleration(tt, rr), rel=1e-12, abs=1e-18)
+                assert moon == pytest.approx(model.moon_position(tt), rel=0, abs=1e-6)  # km
+        # same length (one structure), other numbers (the parameters carry the epoch)
+        assert pars[0].size == pars[1].size and not np.allclose(pars[0], pars[1])
+
+
+@pytest.mark.skipif(compiled.compiler() is None, reason="no C compiler on this machine")
+def test_two_start_epochs_share_one_library_and_match_interpreted_verified(two_epochs, cache, monkeypatch):
+    # one structure, two start epochs: the same key, one library in the cache, each problem solved
+    # with it passes the independent re-propagation (scipy DOP853 on the numpy model), and its
+    # optimum is one of the interpreted NLP too (CasADi's virtual machine on the same expressions,
+    # started there: a library evaluating another NLP would send IPOPT elsewhere).
+    # -O0: compiles in tens of seconds instead of minutes; the key holds the flags.
+    from optimizer import solve
+
+    monkeypatch.setenv("SLINGBACK_CFLAGS", "-O0")
+    monkeypatch.setenv("SLINGBACK_COMPILE", "wait")
+    plans = [solve(prob) for prob in two_epochs]
+    keys = set()
+    for plan in plans:
+        assert plan.verified, plan.reason
+        records = [a["evaluation"] for a in plan.solver["attempts"]]
+        assert records and all(r["mode"] == "compiled" for r in records), records
+        keys |= {r["key"] for r in records}
+    assert "compile_s" in plans[0].solver["attempts"][0]["evaluation"]  # built once ...
+    assert all("compile_s" not in a["evaluation"] for a in plans[1].solver["attempts"])  # ... loaded after
+    assert len(keys) == 1, keys
+    assert len(list(cache.rglob("*.so"))) == 1
+    assert abs(plans[0].total_dv_mps - plans[1].total_dv_mps) > 0.01  # two problems, two answers
+    monkeypatch.setenv("SLINGBACK_COMPILE", "off")
+    for prob, plan in zip(two_epochs, plans):
+        again = solve(prob, warm=plan)
+        assert again.verified and all(a["evaluation"]["mode"] == "interpreted" for a in again.solver["attempts"])
+        # IPOPT's tolerance: 1e-3 m/s is 0.015 % of the 6.8 m/s answer
+        assert again.total_dv_mps == pytest.approx(plan.total_dv_mps, abs=1e-3)

@@ -80,11 +80,22 @@ class ForceModel:
         raise NotImplementedError
 
     # -- CasADi side -----------------------------------------------------------------------
-    def acceleration_casadi(self, t, r, v=None):
+    def casadi_parameters(self) -> np.ndarray:
+        """The numbers the CasADi side depends on that change from problem to problem (ephemeris
+        window and coefficients, the Moon's orbit), as one vector; empty for models without any.
+
+        ``acceleration_casadi(..., par=P)`` and ``moon_position_casadi(t, par=P)`` with a symbolic
+        ``P`` of this length read them from ``P`` (parameters of the NLP, so one compiled library
+        serves problems at any epoch); with ``par=None`` the numbers are written into the
+        expression.
+        """
+        return np.zeros(0)
+
+    def acceleration_casadi(self, t, r, v=None, par=None):
         """The same acceleration as a CasADi 3x1 expression of symbols ``t`` and ``r``."""
         raise NotImplementedError
 
-    def moon_position_casadi(self, t):
+    def moon_position_casadi(self, t, par=None):
         raise NotImplementedError
 
     def describe(self) -> dict:

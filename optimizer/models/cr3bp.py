@@ -49,7 +49,7 @@ class CR3BP(ForceModel):
                          -2 * vx + y - k1 * y - k2 * y,
                          -k1 * z - k2 * z))
 
-    def acceleration_casadi(self, t, r, v=None):
+    def acceleration_casadi(self, t, r, v=None, par=None):
         import casadi as ca
 
         mu = self.mu
@@ -69,7 +69,7 @@ class CR3BP(ForceModel):
     def moon_velocity(self, t):
         return np.zeros(3)
 
-    def moon_position_casadi(self, t):
+    def moon_position_casadi(self, t, par=None):
         import casadi as ca
 
         return ca.DM([1.0 - self.mu, 0.0, 0.0])

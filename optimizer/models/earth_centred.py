@@ -28,8 +28,9 @@ class EarthCentred(ForceModel):
     Parameters
     ----------
     ephemeris : object
-        Gives ``moon(t)``, ``moon_velocity(t)``, ``moon_casadi(t)`` and, when ``sun`` is true,
-        ``sun(t)`` and ``sun_casadi(t)`` (km, geocentric, ICRF axes).
+        Gives ``moon(t)``, ``moon_velocity(t)``, ``moon_casadi(t, par)`` and, when ``sun`` is
+        true, ``sun(t)`` and ``sun_casadi(t, par)`` (km, geocentric, ICRF axes), and
+        ``casadi_parameters()``.
     sun : bool
         Include the Sun as a third body.
     j2 : bool
@@ -96,17 +97,22 @@ class EarthCentred(ForceModel):
         return np.asarray(self.ephemeris.moon_velocity(t), dtype=float)
 
     # -- CasADi --------------------------------------------------------------------------------
-    def acceleration_casadi(self, t, r, v=None):
+    def casadi_parameters(self):
+        """The ephemeris's numbers (window and coefficients, or the circular orbit): see
+        :meth:`ForceModel.casadi_parameters`."""
+        return np.asarray(self.ephemeris.casadi_parameters(), dtype=float)
+
+    def acceleration_casadi(self, t, r, v=None, par=None):
         import casadi as ca
 
         def pull(gm, d):  # acceleration toward a body at separation d
             return gm * d * inv_cube_casadi(d)
 
         acc = -pull(self.gm_earth, r)
-        m = self.ephemeris.moon_casadi(t)
+        m = self.ephemeris.moon_casadi(t, par)
         acc -= pull(self.gm_moon, r - m) + pull(self.gm_moon, m)  # r - m: the separation the NLP shares
         if self.sun:
-            s = self.ephemeris.sun_casadi(t)
+            s = self.ephemeris.sun_casadi(t, par)
             acc -= pull(self.gm_sun, r - s) + pull(self.gm_sun, s)
         if self.j2:
             rr = ca.sumsqr(r)
@@ -115,8 +121,8 @@ class EarthCentred(ForceModel):
             acc += scale * ca.vertcat(r[0] * (1 - 5 * zz), r[1] * (1 - 5 * zz), r[2] * (3 - 5 * zz))
         return acc
 
-    def moon_position_casadi(self, t):
-        return self.ephemeris.moon_casadi(t)
+    def moon_position_casadi(self, t, par=None):
+        return self.ephemeris.moon_casadi(t, par)
 
     def describe(self):
         return {

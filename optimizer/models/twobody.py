@@ -27,7 +27,7 @@ class TwoBody(ForceModel):
     def acceleration(self, t, r, v=None):
         return np.array(point_mass(self.gm, r[0], r[1], r[2]))
 
-    def acceleration_casadi(self, t, r, v=None):
+    def acceleration_casadi(self, t, r, v=None, par=None):
         import casadi as ca
 
         return -self.gm * r / ca.power(ca.sumsqr(r), 1.5)

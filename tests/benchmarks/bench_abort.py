@@ -26,7 +26,11 @@ The first ``--interpreted`` solves run with interpreted NLP functions (``SLINGBA
 the ``--repeat`` timed ones with the compiled library (``SLINGBACK_COMPILE=wait`` compiles it first if
 it is not in the cache: that solve then includes the compile; run twice for the cached figure).
 
+``--propagator c`` runs slingback's propagations (global search, seeds, verification) on the C engine
+(``optimizer/native.py``); the peer keeps the scipy engine it is defined with, and the output says so.
+
 Run: python tests/benchmarks/bench_abort.py [--repeat N] [--interpreted N] [--nudge M/S] [--peer-rtol R] [--no-naive]
+     [--propagator scipy|c]
 """
 
 from __future__ import annotations
@@ -93,7 +97,10 @@ def main(argv=None):
                          "same run, for the compiled/interpreted comparison; 0 skips them")
     ap.add_argument("--no-naive", action="store_true",
                     help="skip the second peer run with SLSQP's own finite differences (scipy's default step)")
+    ap.add_argument("--propagator", choices=("scipy", "c"), default=os.environ.get("SLINGBACK_PROPAGATOR", "scipy"),
+                    help="engine of slingback's propagations (the peer always uses scipy)")
     args = ap.parse_args(argv)
+    os.environ["SLINGBACK_PROPAGATOR"] = args.propagator
 
     t0 = T_PERILUNE - 40 * HOUR
     seed_model = scenario_model()
@@ -102,7 +109,8 @@ def main(argv=None):
     prob = abort_problem(t0, y0)
     print(f"abort case: start {format_epoch(t0)} TDB, +{args.nudge} m/s along the velocity, "
           f"one burn in [+1 h, +12 h], cap 300 m/s")
-    print(f"machine load average (1 min): {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores")
+    print(f"machine load average (1 min): {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores; "
+          f"slingback's propagator engine: {args.propagator}")
 
     runs, interp = [], []
     mode = os.environ.get("SLINGBACK_COMPILE", "auto")
@@ -131,6 +139,7 @@ def main(argv=None):
     e2e = [p.solver["end_to_end_s"] for p, _ in runs]
     its = plan.solver["iterations"]
 
+    os.environ["SLINGBACK_PROPAGATOR"] = "scipy"  # the peer as defined: scipy's DOP853
     peer_model = scenario_model()
     t = time.perf_counter()
     peer = SingleShooting(peer_model, prob, rtol=args.peer_rtol, atol=args.peer_rtol).solve()
