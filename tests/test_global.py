@@ -107,3 +107,22 @@ def test_targeting_converges_from_a_steep_ballistic_return(model, natural):
     peri, entry = arc.first("perilune"), arc.first("entry")
     assert 100.0 <= np.linalg.norm(peri.y[:3] - model.moon_position(peri.t)) - 1737.4 <= 5000.0
     assert -6.95 <= np.degrees(flight_path_angle(entry.y[:3], entry.y[3:])) <= -5.85
+
+
+def test_screen_survives_a_coast_into_the_earth(model):
+    """A start whose coast without burns falls straight into the Earth (radial, 60,000 km out):
+    the screen's ballistic path must stop at the impact (an event), not stall the integrator in
+    the Earth's centre ("required step size is less than spacing between numbers")."""
+    from optimizer.solve.search import ballistic_path
+
+    r0 = 60000.0
+    y0 = np.array([r0, 0.0, 0.0, -0.5, 0.0, 0.0])  # km, km/s: inbound, no angular momentum
+    problem = Problem(name="into-earth", start=StateStart(T_START, tuple(y0)),
+                      burns=(BurnSpec((T_START + HOUR, T_START + 20 * HOUR), 500.0, "free", "outbound"),),
+                      lunar=LunarPass((100.0, 10000.0)),
+                      arrival=ReturnSpec(target="entry", entry_radius_km=ENTRY, flight_path_deg=(-7.0, -5.5)),
+                      model=ModelSpec(kind="earth-moon"))
+    arc, t_peri = ballistic_path(problem, model, T_START + 5 * DAY)
+    assert arc.status == "stopped at impact_earth"
+    r_end = np.linalg.norm(arc.y[:3, -1])
+    assert abs(r_end - R_EARTH) < 1.0  # stopped at the surface, not somewhere inside

@@ -90,7 +90,9 @@ class _Pass:
     def __init__(self, model, t0, y0, t_end, r_enc, moon_needed, problem):
         self.ok = False
         if moon_needed:
-            arc = propagate(model, t0, y0, t_end, events=("perilune",), terminal=("perilune",),
+            # an impact ends the leg (a path through a body would stall the integrator)
+            arc = propagate(model, t0, y0, t_end, events=("perilune", "impact_earth", "impact_moon"),
+                            terminal=("perilune", "impact_earth", "impact_moon"),
                             perilune_within=r_enc, rtol=SCREEN_RTOL, atol=SCREEN_ATOL)
             peri = arc.first("perilune")
             if peri is None:
@@ -104,8 +106,9 @@ class _Pass:
             t_out, y_out = t0, y0
         entry = problem.arrival.target == "entry"
         if t_end > t_out:
-            arc = propagate(model, t_out, y_out, t_end, events=("perigee", "entry") if entry else ("perigee",),
-                            terminal=("perigee", "entry"), entry_radius=problem.arrival.entry_radius_km,
+            arc = propagate(model, t_out, y_out, t_end,
+                            events=("perigee", "entry", "impact_earth") if entry else ("perigee", "impact_earth"),
+                            terminal=("perigee", "entry", "impact_earth"), entry_radius=problem.arrival.entry_radius_km,
                             perigee_within=RETURN_RADIUS_KM, rtol=SCREEN_RTOL, atol=SCREEN_ATOL)
             y_ret, t_ret = arc.y[:, -1], float(arc.t[-1])
             reached = arc.status != "completed"
@@ -360,8 +363,9 @@ def target(problem, model, t_b, y_b, t_end, *, direction="free", leg="outbound",
 def ballistic_path(problem, model, t_end):
     """The coast with every burn at zero (the screen's pre-burn states), with its lunar encounter."""
     st = problem.start
-    arc = propagate(model, st.epoch, np.asarray(st.state, float), t_end, events=("perilune",),
-                    terminal=(), perilune_within=encounter_radius(problem), rtol=SCREEN_RTOL, atol=SCREEN_ATOL)
+    arc = propagate(model, st.epoch, np.asarray(st.state, float), t_end,
+                    events=("perilune", "impact_earth", "impact_moon"), terminal=("impact_earth", "impact_moon"),
+                    perilune_within=encounter_radius(problem), rtol=SCREEN_RTOL, atol=SCREEN_ATOL)
     peri = arc.first("perilune")
     return arc, (None if peri is None else peri.t)
 
@@ -401,7 +405,8 @@ def screen(problem, model, say=lambda m: None) -> tuple[list[Seed], float | None
         families = [("same side, same sense", 1.0, 1.0), ("same side, opposite sense", 1.0, -1.0)]
         if b.leg == "outbound":
             families += [("other side, same sense", -1.0, 1.0), ("other side, opposite sense", -1.0, -1.0)]
-        epochs = seed_epochs(problem, j, problem.start.epoch, t_peri, t_end)
+        # burns only while the coast without them is still flying (it may end in an impact)
+        epochs = seed_epochs(problem, j, problem.start.epoch, t_peri, min(t_end, float(arc.t[-1])))
         if not epochs:
             continue
 

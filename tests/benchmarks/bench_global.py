@@ -46,6 +46,9 @@ sys.path.insert(0, HERE)
 import global_cases as gc  # noqa: E402
 import global_reference as gr  # noqa: E402
 
+# No background compiles unless asked: a compiler running beside the solves would move the timings.
+os.environ.setdefault("SLINGBACK_COMPILE", "off")
+
 WITHIN_REL, WITHIN_ABS = 0.005, 1e-3  # reference + 0.5 % (+ 1 mm/s)
 ABOVE_REL, ABOVE_ABS = 1e-4, 1e-3  # above the planted bound: by more than 0.01 % + 1 mm/s
 GOALS = {"verified_pct": 98.0, "within_pct": 97.0, "above_bound": 0, "median_s": 5.0, "p95_s": 20.0}
@@ -101,7 +104,9 @@ def main(argv=None):
         refs = gr.load_references(cases, args.ref_workers, args.recompute_references)
     print(f"{len(cases)} cases ({args.half if not args.seeds else 'chosen seeds'}), generator "
           f"{gc.GENERATOR_VERSION}, scanner {gr.SCANNER_VERSION}; {args.workers} solver process(es); "
-          f"load average {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores", flush=True)
+          f"load average {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores; SLINGBACK_COMPILE="
+          f"{os.environ['SLINGBACK_COMPILE']}, propagator engine {os.environ.get('SLINGBACK_PROPAGATOR', 'default')}",
+          flush=True)
 
     rows, by_seed = [], {c.seed: c for c in cases}
     dicts = [gc.case_to_dict(c) for c in cases]
