@@ -133,7 +133,7 @@ def _progress(args):
 
 # ------------------------------------------------------------------------------------------------
 def _solve_into(problem, out: Path, force: bool, args) -> int:
-    from .export import run_summary, write_run
+    from .export import OutputPathError, run_summary, write_run
     from .export.run import refuse_existing, save_rescued_plan
 
     refuse_existing(out, force)  # exists, is a file, lies under a file or cannot be written: before solving
@@ -149,9 +149,10 @@ def _solve_into(problem, out: Path, force: bool, args) -> int:
         return EXIT_UNVERIFIED
     try:
         write_run(plan, problem, out, force=force)
-    except OSError as exc:
+    except (OSError, OutputPathError) as exc:  # the location changed since the check before solving
         kept = save_rescued_plan(plan, problem, out)
-        _err(f"error: the run folder {out} could not be written ({exc.strerror or exc}); nothing was left there. "
+        why = (exc.strerror if isinstance(exc, OSError) else None) or exc
+        _err(f"error: the run folder {out} could not be written ({why}); nothing was left there. "
              + (f"The plan ({plan.status}) is kept in {kept}" if kept else "The plan could not be kept anywhere"))
         return EXIT_INPUT
     summary = run_summary(plan, out)
