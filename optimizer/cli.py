@@ -7,10 +7,27 @@ reason is printed), 130 interrupted (Ctrl-C; nothing is written).
 
 from __future__ import annotations
 
-import argparse
-import json
+import os
+import signal
 import sys
-from pathlib import Path
+
+
+def _interrupted_while_starting(signum, frame):
+    """Ctrl-C before :func:`main` handles it (the command's own imports): one line, exit 130."""
+    os.write(2, b"slingback: interrupted (Ctrl-C) while starting; nothing written\n")
+    os._exit(130)
+
+
+# Run as the command (python -m optimizer.cli, or the `slingback` script): Ctrl-C is ours from here
+# on, before the imports below (a KeyboardInterrupt raised in them would end the process by the
+# signal, -2, with a traceback).  Not when imported as a library, and not when SIGINT is ignored.
+if (__name__ == "__main__" or os.path.basename(sys.argv[0]) == "slingback") and \
+        signal.getsignal(signal.SIGINT) is signal.default_int_handler:
+    signal.signal(signal.SIGINT, _interrupted_while_starting)
+
+import argparse  # noqa: E402
+import json  # noqa: E402
+from pathlib import Path  # noqa: E402
 
 from . import __version__
 from .constants import CAUTION
@@ -97,18 +114,32 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
-    """Run the command line; returns the exit code."""
-    try:
-        args = _parser().parse_args(argv)
-    except SystemExit as exc:  # argparse: --help (0) or a usage error (2)
-        return int(exc.code or 0)
-    from .interrupt import honour_ctrl_c
+    """Run the command line; returns the exit code.
 
+    Ctrl-C anywhere in here (parsing, imports, the work) ends with one line and exit 130.
+    """
+    command = "slingback"
     try:
-        with honour_ctrl_c():
-            return _run(args)
+        if signal.getsignal(signal.SIGINT) is _interrupted_while_starting:
+            signal.signal(signal.SIGINT, signal.default_int_handler)  # from here a KeyboardInterrupt
+        try:
+            args = _parser().parse_args(argv)
+        except SystemExit as exc:  # argparse: --help (0) or a usage error (2)
+            return int(exc.code or 0)
+        command = args.command
+        from . import interrupt
+
+        try:
+            with interrupt.honour_ctrl_c():
+                return _run(args)
+        except Exception:
+            if not interrupt.pressed():
+                raise
+            raise KeyboardInterrupt from None  # what broke did so because of the Ctrl-C
     except KeyboardInterrupt:
-        _err(f"interrupted (Ctrl-C); {args.command} stopped, nothing written")
+        previous = signal.signal(signal.SIGINT, signal.SIG_IGN)  # a second Ctrl-C cannot cut this line
+        _err(f"interrupted (Ctrl-C); {command} stopped, nothing written")
+        signal.signal(signal.SIGINT, previous)
         return EXIT_INTERRUPTED
 
 
@@ -330,4 +361,13 @@ COMMANDS = {"solve": cmd_solve, "check": cmd_check, "demo": cmd_demo, "models": 
             "dispersion": cmd_dispersion}
 
 if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())
+    code = main()
+    if code == EXIT_INTERRUPTED:
+        # Under `python -m`, CPython 3.11 ends the process by the signal itself (-2) once a
+        # KeyboardInterrupt has passed through an exec or eval of source text (a dataclass or
+        # named tuple being made by an import the Ctrl-C landed in), whatever the exit code.  The
+        # command has stopped and said so: leave at once with 130.
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os._exit(code)
+    sys.exit(code)

@@ -242,6 +242,37 @@ def test_ctrl_c_during_solve_exits_130_with_one_line_and_writes_nothing(tmp_path
     assert list(tmp_path.iterdir()) == []
 
 
+# Modules the command imports in turn: its own start (handler installed before them), main()
+# before the guarded block, the first heavy import inside it, the file layer, the export layer,
+# CasADi.  `python -X importtime` prints a line as each import completes (CPython's own option).
+EARLY_MARKS = ["optimizer.constants", "optimizer.interrupt", "numpy", "optimizer.problem_file", "optimizer.export",
+               "casadi"]
+
+
+@pytest.mark.parametrize("mark", EARLY_MARKS)
+def test_early_ctrl_c_exits_130_with_one_line(tmp_path, mark):
+    """Ctrl-C in the first fraction of a second (while the command is still importing) ends with exit
+    130 and one line, not death by the signal (-2) or a traceback.  Not timed: SIGINT is sent as soon
+    as the process reports that ``mark`` has been imported, so it lands somewhere after that point,
+    and every point after it must end the same way."""
+    out = tmp_path / "run"
+    p = subprocess.Popen([sys.executable, "-X", "importtime", "-m", "optimizer.cli", "solve",
+                          str(ROOT / "problems/demo-abort.toml"), "--out", str(out), "--quiet"],
+                         cwd=tmp_path, env={**os.environ, "PYTHONPATH": str(ROOT)},
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    seen = []
+    for line in p.stderr:
+        seen.append(line)
+        if line.split("|")[-1].strip() == mark:
+            p.send_signal(signal.SIGINT)
+            break
+    rest, err = p.communicate(timeout=120)
+    lines = [x for x in "".join(seen[-1:]) .splitlines() + err.splitlines() if not x.startswith("import time:")]
+    assert p.returncode == 130, (mark, lines[-20:])
+    assert len(lines) == 1 and lines[0].startswith("slingback: interrupted (Ctrl-C)"), lines
+    assert not out.exists() and list(tmp_path.iterdir()) == []
+
+
 def test_unverified_run_marks_problem_toml_not_verified(case, tmp_path):
     """Docs drift of the issue: every file of an unverified run says so (plan.json in its status)."""
     import tomllib
