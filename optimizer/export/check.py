@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from ..frames import rtn_matrix
-from ..plan import Plan
+from ..plan import FINITE_BURN_METHOD, Plan
 from ..propagate import propagate
 from ..propellant import G0, finite_burns
 from ..timescales import parse_epoch
@@ -51,6 +51,8 @@ CLAIM_LIMITS = {"perilune_epoch_s": 1.0, "arrival_epoch_s": 1.0, "entry_speed_mp
 #: position from the ephemeris fit over check's span rather than the solver's (1 cm apart on the
 #: shipped demo): 1 m.
 EVENT_SELF_TOL = {"altitude_km": 1e-3, "flight_path_deg": 1e-6, "inclination_deg": 1e-6, "speed_kms": 1e-9}
+#: What a plan says about how its numbers are to be read (written so by :meth:`Plan.to_dict`).
+FIXED_CLAIMS = {"time_scale": "TDB", "frame": "Earth-centred inertial, ICRF axes"}
 #: Deepest nesting a plan file may have (the format needs 5 levels).
 MAX_DEPTH = 12
 
@@ -95,6 +97,14 @@ def read_plan_data(path) -> tuple[Plan, dict]:
     if not (np.all(np.isfinite(plan.start_state)) and math.isfinite(plan.start_epoch)
             and all(math.isfinite(b.epoch) and np.all(np.isfinite(b.dv)) for b in plan.burns)):
         raise PlanFileError(f"{path}: start and burns: expected finite numbers")
+    for k, e in enumerate(plan.events, 1):  # the figures verify compares must be numbers
+        for key in ("epoch", "altitude_km", "flight_path_deg", "inclination_deg", "speed_kms"):
+            x = getattr(e, key)
+            if not (_is_number(x) or (x is None and key not in ("epoch", "altitude_km"))):
+                name = "epoch_tdb_s" if key == "epoch" else key
+                raise PlanFileError(f"{path}: events[{k}].{name}: expected a finite number, got {_short(x)}")
+        if not (len(e.state) == 6 and all(_is_number(x) for x in e.state)):
+            raise PlanFileError(f"{path}: events[{k}].state_km_kms: expected six finite numbers")
     return plan, data
 
 
@@ -186,12 +196,12 @@ def claim_differences(data: dict, plan, problem, ver, model=None) -> list[str]:
     if isinstance(recorded, dict) and recorded.get("passed") is not ver.passed:
         out.append(f"verification.passed: the file records {recorded.get('passed')!r}, the re-verification "
                    f"{'passed' if ver.passed else 'failed'}")
-    if isinstance(recorded, dict) and recorded.get("tolerances") != ver.tolerances:
+    if isinstance(recorded, dict) and not _same(recorded.get("tolerances"), ver.tolerances):
         out.append(f"verification.tolerances: the file records {_short(recorded.get('tolerances'))}, the problem's "
                    f"are {_short(ver.tolerances)}")
     if isinstance(recorded, dict):
         _compare_residuals(out, recorded.get("residuals"), ver)
-        if recorded.get("propagator") != ver.propagator:
+        if not _same(recorded.get("propagator"), ver.propagator):
             out.append(f"verification.propagator: the file records {_short(recorded.get('propagator'))}, the "
                        f"re-verification used {_short(ver.propagator)}")
         if not isinstance(recorded.get("violations"), list) or bool(recorded["violations"]) != bool(ver.violations):
@@ -200,6 +210,9 @@ def claim_differences(data: dict, plan, problem, ver, model=None) -> list[str]:
     elif recorded is not None or status == "verified":
         out.append(f"verification: expected the recorded verdict (an object), got {_short(recorded)}")
     _compare_finite_burns(out, data, plan, problem)
+    for key, meant in FIXED_CLAIMS.items():  # how every number in the file is to be read
+        if data.get(key) != meant:
+            out.append(f"{key}: the file says {_short(data.get(key))}; a slingback plan's numbers are {meant!r}")
     for key, limit in CLAIM_LIMITS.items():
         if key in ver.residuals and not ver.residuals[key] <= limit:
             out.append(f"{key}: the plan's event is {ver.residuals[key]:.4g} from the re-propagated one "
@@ -265,6 +278,10 @@ def _compare_finite_burns(out, data, plan, problem):
     if not isinstance(summary, dict):
         out.append(f"finite_burns: expected the summary object, got {_short(summary)}")
         return
+    method = FINITE_BURN_METHOD
+    if summary.get("method") != method:
+        out.append(f"finite_burns.method: the file says {_short(summary.get('method'))}, the figures are "
+                   f"derived by: {method}")
     prop = problem.propulsion
     derived = {"standard_gravity_mps2": G0, "initial_mass_kg": prop.mass_kg, "thrust_n": prop.thrust_n,
                "isp_s": prop.isp_s, "final_mass_kg": figures[-1].mass_after_kg if figures else prop.mass_kg,
@@ -337,7 +354,7 @@ def _compare_model(out, claimed, plan, problem, model=None):
         derived = (model or plan_model(plan, problem)).describe()
     except (ValueError, RuntimeError):
         return
-    if not isinstance(claimed, dict) or any(claimed.get(k) != derived.get(k) for k in MODEL_KEYS):
+    if not isinstance(claimed, dict) or any(not _same(claimed.get(k), derived.get(k)) for k in MODEL_KEYS):
         out.append(f"model: the file records {_short(claimed)}, the problem's model is "
                    f"{_short({k: derived.get(k) for k in MODEL_KEYS})}")
 
@@ -353,6 +370,17 @@ def _compare_residuals(out, claimed, ver):
         limit = ver.tolerances.get(key)
         tol = RESIDUAL_SHARE * limit if limit else RESIDUAL_FLOOR
         _compare(out, f"verification.residuals.{key}", claimed[key], derived, tol, key.rsplit("_", 1)[-1])
+
+
+def _same(a, b) -> bool:
+    """Equal as JSON values: true is not 1, 1.0 is 1 (Python's == says True == 1.0)."""
+    if isinstance(a, bool) or isinstance(b, bool):
+        return type(a) is type(b) and a == b
+    if isinstance(a, dict) and isinstance(b, dict):
+        return a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
+    if isinstance(a, (list, tuple)) and isinstance(b, (list, tuple)):
+        return len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b))
+    return a == b
 
 
 def _short(x) -> str:
