@@ -315,8 +315,11 @@ def cmd_sweep(args) -> int:
 
 def cmd_dispersion(args) -> int:
     from .dispersion import load_error_model, parse_overrides
-    from .dispersion.outputs import progress_bar, read_verified_plan, run_dispersion, write_dispersion
-    from .export.run import refuse_existing
+    import shutil
+
+    from .dispersion.outputs import (progress_bar, read_verified_plan, run_dispersion, temporary_store,
+                                     write_dispersion)
+    from .export.run import OutputPathError, check_writable, refuse_existing
 
     errors = load_error_model(args.errors, parse_overrides(args.set))  # bad input stops here
     plan, problem, source = read_verified_plan(args.plan)
@@ -324,16 +327,34 @@ def cmd_dispersion(args) -> int:
         _err(f"{source}: the plan is {plan.status}, not verified; a dispersion of it means nothing")
         return EXIT_UNVERIFIED
     out = Path(args.out) if args.out else Path("outputs") / f"{plan.name}-dispersion"
-    refuse_existing(out, args.force)
+    refuse_existing(out, args.force)  # before any sample is computed
+    if args.resume:
+        check_writable(Path(args.resume), folder_of=Path(args.resume))
+    store, kept = temporary_store(args.resume, plan.name)  # every finished chunk saved as it comes
     update, close = progress_bar(args.samples, args.quiet)
+    result = None
     try:
-        result = run_dispersion(plan, problem, errors, samples=args.samples, seed=args.seed,
-                                workers=args.workers, scheduler=args.scheduler, resume_dir=args.resume,
-                                progress=_progress(args), sample_progress=update,
-                                margin_solve=not args.no_margin_solve)
+        try:
+            result = run_dispersion(plan, problem, errors, samples=args.samples, seed=args.seed,
+                                    workers=args.workers, scheduler=args.scheduler, resume_dir=store,
+                                    progress=_progress(args), sample_progress=update,
+                                    margin_solve=not args.no_margin_solve)
+        finally:
+            close()
+        write_dispersion(result, plan, problem, out, force=args.force)
+    except (OSError, OutputPathError) as exc:
+        why = (exc.strerror if isinstance(exc, OSError) else None) or exc
+        if result is None:  # the sample store itself could not be written
+            _err(f"error: the samples could not be saved in {store} ({why}); nothing was written to {out}")
+            return EXIT_INPUT
+        kept = True  # the samples are what took the time: keep their store
+        _err(f"error: the dispersion folder {out} could not be written ({why}); nothing was left there. "
+             f"The {args.samples} computed samples are kept in {store}: run the same command with "
+             f"--resume {store} (and a writable --out) to write them without computing them again")
+        return EXIT_INPUT
     finally:
-        close()
-    write_dispersion(result, plan, problem, out, force=args.force)
+        if not kept:
+            shutil.rmtree(store, ignore_errors=True)
     s = result["summary"]
     ins = s["inside"]
     if args.json:
