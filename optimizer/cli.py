@@ -176,7 +176,11 @@ def _solve_into(problem, out: Path, force: bool, args) -> int:
     try:
         plan = solve(problem, progress=progress)
     except SolveError as exc:
-        _err(f"no solution: the problem cannot be set up ({exc}); nothing written")
+        from .diagnose import explain_failure
+
+        cause = explain_failure(problem)  # the problem's key, when the burn-free coast shows it
+        _err(f"no solution: {cause}; nothing written" if cause else
+             f"no solution: the problem cannot be set up ({exc}); nothing written")
         return EXIT_UNVERIFIED
     try:
         write_run(plan, problem, out, force=force)
@@ -195,7 +199,10 @@ def _solve_into(problem, out: Path, force: bool, args) -> int:
         for b in summary["burns"]:
             print(f"  burn at {b['epoch_tdb']} TDB: {b['dv_mps']:.3f} m/s")
     if not plan.verified:
-        _err(f"no verified solution ({plan.status}): {plan.reason or 'no reason recorded'}; "
+        from .diagnose import explain_failure
+
+        cause = explain_failure(problem)
+        _err(f"no verified solution ({plan.status}): {cause or plan.reason or 'no reason recorded'}; "
              f"diagnostics in {out / 'report.md'}")
         return EXIT_UNVERIFIED
     return EXIT_OK
