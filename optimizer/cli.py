@@ -7,10 +7,27 @@ reason is printed), 130 interrupted (Ctrl-C; nothing is written).
 
 from __future__ import annotations
 
-import argparse
-import json
+import os
+import signal
 import sys
-from pathlib import Path
+
+
+def _interrupted_while_starting(signum, frame):
+    """Ctrl-C before :func:`main` handles it (the command's own imports): one line, exit 130."""
+    os.write(2, b"slingback: interrupted (Ctrl-C) while starting; nothing written\n")
+    os._exit(130)
+
+
+# Run as the command (python -m optimizer.cli, or the `slingback` script): Ctrl-C is ours from here
+# on, before the imports below (a KeyboardInterrupt raised in them would end the process by the
+# signal, -2, with a traceback).  Not when imported as a library, and not when SIGINT is ignored.
+if (__name__ == "__main__" or os.path.basename(sys.argv[0]) == "slingback") and \
+        signal.getsignal(signal.SIGINT) is signal.default_int_handler:
+    signal.signal(signal.SIGINT, _interrupted_while_starting)
+
+import argparse  # noqa: E402
+import json  # noqa: E402
+from pathlib import Path  # noqa: E402
 
 from . import __version__
 from .constants import CAUTION
@@ -97,18 +114,32 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
-    """Run the command line; returns the exit code."""
-    try:
-        args = _parser().parse_args(argv)
-    except SystemExit as exc:  # argparse: --help (0) or a usage error (2)
-        return int(exc.code or 0)
-    from .interrupt import honour_ctrl_c
+    """Run the command line; returns the exit code.
 
+    Ctrl-C anywhere in here (parsing, imports, the work) ends with one line and exit 130.
+    """
+    command = "slingback"
     try:
-        with honour_ctrl_c():
-            return _run(args)
+        if signal.getsignal(signal.SIGINT) is _interrupted_while_starting:
+            signal.signal(signal.SIGINT, signal.default_int_handler)  # from here a KeyboardInterrupt
+        try:
+            args = _parser().parse_args(argv)
+        except SystemExit as exc:  # argparse: --help (0) or a usage error (2)
+            return int(exc.code or 0)
+        command = args.command
+        from . import interrupt
+
+        try:
+            with interrupt.honour_ctrl_c():
+                return _run(args)
+        except Exception:
+            if not interrupt.pressed():
+                raise
+            raise KeyboardInterrupt from None  # what broke did so because of the Ctrl-C
     except KeyboardInterrupt:
-        _err(f"interrupted (Ctrl-C); {args.command} stopped, nothing written")
+        previous = signal.signal(signal.SIGINT, signal.SIG_IGN)  # a second Ctrl-C cannot cut this line
+        _err(f"interrupted (Ctrl-C); {command} stopped, nothing written")
+        signal.signal(signal.SIGINT, previous)
         return EXIT_INTERRUPTED
 
 
@@ -133,7 +164,7 @@ def _progress(args):
 
 # ------------------------------------------------------------------------------------------------
 def _solve_into(problem, out: Path, force: bool, args) -> int:
-    from .export import run_summary, write_run
+    from .export import OutputPathError, run_summary, write_run
     from .export.run import refuse_existing, save_rescued_plan
 
     refuse_existing(out, force)  # exists, is a file, lies under a file or cannot be written: before solving
@@ -146,13 +177,18 @@ def _solve_into(problem, out: Path, force: bool, args) -> int:
     try:
         plan = solve(problem, progress=progress, problem_table=problem_to_dict)
     except SolveError as exc:
-        _err(f"no solution: the problem cannot be set up ({exc}); nothing written")
+        from .diagnose import explain_failure
+
+        cause = explain_failure(problem)  # the problem's key, when the burn-free coast shows it
+        _err(f"no solution: {cause}; nothing written" if cause else
+             f"no solution: the problem cannot be set up ({exc}); nothing written")
         return EXIT_UNVERIFIED
     try:
         write_run(plan, problem, out, force=force)
-    except OSError as exc:
+    except (OSError, OutputPathError) as exc:  # the location changed since the check before solving
         kept = save_rescued_plan(plan, problem, out)
-        _err(f"error: the run folder {out} could not be written ({exc.strerror or exc}); nothing was left there. "
+        why = (exc.strerror if isinstance(exc, OSError) else None) or exc
+        _err(f"error: the run folder {out} could not be written ({why}); nothing was left there. "
              + (f"The plan ({plan.status}) is kept in {kept}" if kept else "The plan could not be kept anywhere"))
         return EXIT_INPUT
     summary = run_summary(plan, out)
@@ -164,7 +200,10 @@ def _solve_into(problem, out: Path, force: bool, args) -> int:
         for b in summary["burns"]:
             print(f"  burn at {b['epoch_tdb']} TDB: {b['dv_mps']:.3f} m/s")
     if not plan.verified:
-        _err(f"no verified solution ({plan.status}): {plan.reason or 'no reason recorded'}; "
+        from .diagnose import explain_failure
+
+        cause = explain_failure(problem)
+        _err(f"no verified solution ({plan.status}): {cause or plan.reason or 'no reason recorded'}; "
              f"diagnostics in {out / 'report.md'}")
         return EXIT_UNVERIFIED
     return EXIT_OK
@@ -286,8 +325,11 @@ def cmd_sweep(args) -> int:
 
 def cmd_dispersion(args) -> int:
     from .dispersion import load_error_model, parse_overrides
-    from .dispersion.outputs import progress_bar, read_verified_plan, run_dispersion, write_dispersion
-    from .export.run import refuse_existing
+    import shutil
+
+    from .dispersion.outputs import (progress_bar, read_verified_plan, run_dispersion, temporary_store,
+                                     write_dispersion)
+    from .export.run import OutputPathError, check_writable, refuse_existing
 
     errors = load_error_model(args.errors, parse_overrides(args.set))  # bad input stops here
     plan, problem, source = read_verified_plan(args.plan)
@@ -295,16 +337,34 @@ def cmd_dispersion(args) -> int:
         _err(f"{source}: the plan is {plan.status}, not verified; a dispersion of it means nothing")
         return EXIT_UNVERIFIED
     out = Path(args.out) if args.out else Path("outputs") / f"{plan.name}-dispersion"
-    refuse_existing(out, args.force)
+    refuse_existing(out, args.force)  # before any sample is computed
+    if args.resume:
+        check_writable(Path(args.resume), folder_of=Path(args.resume))
+    store, kept = temporary_store(args.resume, plan.name)  # every finished chunk saved as it comes
     update, close = progress_bar(args.samples, args.quiet)
+    result = None
     try:
-        result = run_dispersion(plan, problem, errors, samples=args.samples, seed=args.seed,
-                                workers=args.workers, scheduler=args.scheduler, resume_dir=args.resume,
-                                progress=_progress(args), sample_progress=update,
-                                margin_solve=not args.no_margin_solve)
+        try:
+            result = run_dispersion(plan, problem, errors, samples=args.samples, seed=args.seed,
+                                    workers=args.workers, scheduler=args.scheduler, resume_dir=store,
+                                    progress=_progress(args), sample_progress=update,
+                                    margin_solve=not args.no_margin_solve)
+        finally:
+            close()
+        write_dispersion(result, plan, problem, out, force=args.force)
+    except (OSError, OutputPathError) as exc:
+        why = (exc.strerror if isinstance(exc, OSError) else None) or exc
+        if result is None:  # the sample store itself could not be written
+            _err(f"error: the samples could not be saved in {store} ({why}); nothing was written to {out}")
+            return EXIT_INPUT
+        kept = True  # the samples are what took the time: keep their store
+        _err(f"error: the dispersion folder {out} could not be written ({why}); nothing was left there. "
+             f"The {args.samples} computed samples are kept in {store}: run the same command with "
+             f"--resume {store} (and a writable --out) to write them without computing them again")
+        return EXIT_INPUT
     finally:
-        close()
-    write_dispersion(result, plan, problem, out, force=args.force)
+        if not kept:
+            shutil.rmtree(store, ignore_errors=True)
     s = result["summary"]
     ins = s["inside"]
     if args.json:
@@ -332,4 +392,13 @@ COMMANDS = {"solve": cmd_solve, "check": cmd_check, "demo": cmd_demo, "models": 
             "dispersion": cmd_dispersion}
 
 if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())
+    code = main()
+    if code == EXIT_INTERRUPTED:
+        # Under `python -m`, CPython 3.11 ends the process by the signal itself (-2) once a
+        # KeyboardInterrupt has passed through an exec or eval of source text (a dataclass or
+        # named tuple being made by an import the Ctrl-C landed in), whatever the exit code.  The
+        # command has stopped and said so: leave at once with 130.
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os._exit(code)
+    sys.exit(code)

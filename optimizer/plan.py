@@ -27,6 +27,9 @@ FORMAT_VERSION = 2
 #: Versions :meth:`Plan.from_dict` reads (version 1: the library's names in the solver record).
 READABLE_VERSIONS = (1, 2)
 
+#: How the finite-burn figures of a plan are derived (``finite_burns.method`` in plan.json).
+FINITE_BURN_METHOD = ("rocket equation per burn, constant thrust, burn centred on the impulse; "
+                      "mass carried from burn to burn; gravity losses neglected")
 #: Our names for the optimisation library's timing entries (``timing_s``).
 TIMING_NAMES = {"nlp_f": "objective", "nlp_g": "constraints", "nlp_grad_f": "objective_gradient",
                 "nlp_grad": "lagrangian_gradient", "nlp_jac_g": "constraint_jacobian",
@@ -184,8 +187,7 @@ class Plan:
         summary = {}
         if figures is not None:
             summary["finite_burns"] = {
-                "method": "rocket equation per burn, constant thrust, burn centred on the impulse; "
-                          "mass carried from burn to burn; gravity losses neglected",
+                "method": FINITE_BURN_METHOD,
                 "standard_gravity_mps2": G0, "initial_mass_kg": propulsion.mass_kg,
                 "thrust_n": propulsion.thrust_n, "isp_s": propulsion.isp_s,
                 "final_mass_kg": figures[-1].mass_after_kg if figures else propulsion.mass_kg,

@@ -151,3 +151,73 @@ def test_json_200000_deep_exit_2(tmp_path, command, shape):
     raw = shape * 200_000 + ("" if shape == "[" else "1") + close * 200_000
     code, err = check(tmp_path, raw=raw, command=command)
     assert code == 2 and "nested too deeply" in err
+
+
+# -- finite-burn figures and recorded residuals (issue 13, open points) ---------------------------
+# The fixture has a [spacecraft] table (invented: 1,200 kg, 440 N, 225 s), so plan.json carries each
+# burn's mass, propellant, duration, ignition and cut-off, re-derived by check with the rocket
+# equation (Tsiolkovsky; any astronautics text, e.g. Sutton & Biblarz, Rocket Propulsion Elements,
+# 9th ed., eq. 4-6, from memory) and constant thrust; a changed figure must fail.
+@pytest.mark.parametrize("key, change", [("propellant_kg", 0.01), ("mass_after_kg", -0.01), ("duration_s", 0.5),
+                                         ("ignition_epoch_tdb_s", -10.0), ("cutoff_epoch_tdb_s", 10.0)])
+def test_false_finite_burn_figure_exit_3(base, tmp_path, key, change):
+    code, err = check(tmp_path, tampered(base, lambda d: d["burns"][0].update({key: d["burns"][0][key] + change})))
+    assert code == 3 and f"burns[1].{key}" in err
+
+
+def test_ignition_text_moved_with_its_seconds_exit_3(base, tmp_path):
+    """Both forms of the ignition epoch moved together: consistent with each other, not with the burn."""
+    def change(d):
+        b = d["burns"][0]
+        b["ignition_epoch_tdb_s"] -= 60.0
+        b["ignition_epoch_tdb"] = "2027-05-11T11:58:59.687568"
+    code, err = check(tmp_path, tampered(base, change))
+    assert code == 3 and "burns[1].ignition_epoch_tdb_s" in err
+
+
+@pytest.mark.parametrize("key", ["total_propellant_kg", "final_mass_kg", "isp_s"])
+def test_false_finite_burn_summary_exit_3(base, tmp_path, key):
+    code, err = check(tmp_path, tampered(base, lambda d: d["finite_burns"].update({key: d["finite_burns"][key] * 1.01})))
+    assert code == 3 and f"finite_burns.{key}" in err
+
+
+def test_finite_burn_figures_without_a_spacecraft_table_exit_3(base, tmp_path):
+    code, err = check(tmp_path, tampered(base, lambda d: d["problem"].pop("spacecraft")))
+    assert code == 3 and "no [spacecraft] table" in err
+
+
+@pytest.mark.parametrize("key, value", [("flight_path_deg", 0.005), ("entry_position_km", 0.5),
+                                        ("arrival_epoch_s", 0.5)])
+def test_false_recorded_residual_exit_3(base, tmp_path, key, value):
+    """A residual under its tolerance, but not the one re-derived (0 for this hand-made plan)."""
+    code, err = check(tmp_path, tampered(base, lambda d: d["verification"]["residuals"].update({key: value})))
+    assert code == 3 and f"verification.residuals.{key}" in err
+
+
+def test_event_epoch_and_its_residual_moved_together_exit_3(base, tmp_path):
+    """The perilune claimed 100 s late with a residual that agrees: the verdict has no epoch
+    tolerance, check holds event epochs to 1 s."""
+    def change(d):
+        d["events"][0]["epoch_tdb_s"] += 100.0
+        del d["events"][0]["epoch_tdb"]
+        d["verification"]["residuals"]["perilune_epoch_s"] = 100.0
+    code, err = check(tmp_path, tampered(base, change))
+    assert code == 3 and "perilune_epoch_s" in err
+
+
+@pytest.mark.parametrize("key", ["flight_path_deg", "inclination_deg", "speed_kms"])
+def test_entry_figure_changed_without_its_state_exit_3(base, tmp_path, key):
+    code, err = check(tmp_path, tampered(base, lambda d: d["events"][1].update({key: d["events"][1][key] + 1e-3})))
+    assert code == 3 and f"events[2].{key}" in err
+
+
+def test_perilune_velocity_changed_exit_3(base, tmp_path):
+    def change(d):
+        d["events"][0]["state_km_kms"][4] += 0.01  # 10 m/s
+    code, err = check(tmp_path, tampered(base, change))
+    assert code == 3 and "events[1] (perilune): velocity" in err
+
+
+def test_model_record_naming_other_physics_exit_3(base, tmp_path):
+    code, err = check(tmp_path, tampered(base, lambda d: d["model"].update(name="ephemeris")))
+    assert code == 3 and "model: the file records" in err

@@ -333,3 +333,66 @@ def test_error_tables_layer_over_each_other(tmp_path):
     em2 = load_error_model([update], parse_overrides(["navigation.position_sigma_km=[0.3,0.3,0.3]"]))
     assert np.allclose(np.diag(em2.navigation.matrix()), [0.09] * 3 + [1e-10] * 3)
     assert em2.sources["navigation.velocity_sigma_mps"].startswith("default")
+
+
+def _dispersion_args(tmp_path, case, out, *extra):
+    problem, _, plan, _ = case
+    (tmp_path / "run").mkdir(exist_ok=True)
+    (tmp_path / "run" / "plan.json").write_text(json.dumps(plan_json(plan, problem)))
+    return ["dispersion", str(tmp_path / "run"), "--samples", "30", "--workers", "1", "--seed", "4", "--out", str(out),
+            "--no-margin-solve", "--quiet", *extra]
+
+
+def test_output_under_a_file_is_refused_before_any_sample(case, tmp_path, monkeypatch):
+    afile = tmp_path / "afile"
+    afile.write_text("keep me")
+    calls = []
+    monkeypatch.setattr(mc, "_chunk_task", lambda *a: calls.append(a))
+    code, _, err = run(_dispersion_args(tmp_path, case, afile / "disp"))
+    assert code == 2 and "afile is a file, not a folder" in err and calls == [] and afile.read_text() == "keep me"
+
+
+def test_failed_folder_write_keeps_the_samples_and_says_where(case, tmp_path, monkeypatch):
+    """The folder cannot be written after the samples were computed (simulated: the move into place is
+    refused, as for a location made read-only meanwhile).  Exit 2, the message names the folder, no
+    partial folder is left, and the samples are kept in a store that a rerun with --resume reads
+    without computing any sample again."""
+    import errno
+    import os
+    from pathlib import Path
+
+    import optimizer.export.run as run_module
+
+    out = tmp_path / "disp"
+    real_rename = os.rename
+
+    def refuse(src, dst, *a, **k):
+        if Path(dst) == out:
+            raise PermissionError(errno.EACCES, os.strerror(errno.EACCES), str(dst))
+        return real_rename(src, dst, *a, **k)
+
+    monkeypatch.setattr(run_module.os, "rename", refuse)
+    code, _, err = run(_dispersion_args(tmp_path, case, out))
+    monkeypatch.setattr(run_module.os, "rename", real_rename)
+    assert code == 2 and f"the dispersion folder {out} could not be written" in err and "Traceback" not in err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["run"]  # no partial folder beside it
+    store = Path(err.split("kept in ")[1].split(":")[0])
+    try:
+        assert len(list((store / "chunks").glob("*.json"))) == 2  # 30 samples in chunks of 25
+        monkeypatch.setattr(mc, "_chunk_task", lambda *a: pytest.fail("a sample was computed again"))
+        code, _, err = run(_dispersion_args(tmp_path, case, out, "--resume", str(store)))
+        assert code == 0, err
+        assert json.loads((out / "summary.json").read_text())["samples"] == 30
+    finally:
+        import shutil
+        shutil.rmtree(store, ignore_errors=True)
+
+
+def test_successful_run_leaves_no_temporary_store(case, tmp_path, monkeypatch):
+    import tempfile
+
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path / "tmp"))
+    (tmp_path / "tmp").mkdir()
+    code, _, err = run(_dispersion_args(tmp_path, case, tmp_path / "disp"))
+    assert code == 0, err
+    assert list((tmp_path / "tmp").iterdir()) == []

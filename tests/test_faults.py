@@ -77,16 +77,88 @@ def test_out_that_is_a_file_with_force_is_refused_before_solving(solver, problem
     assert solver == [] and afile.read_text() == "keep me"
 
 
-@pytest.mark.skipif(hasattr(os, "geteuid") and os.geteuid() == 0, reason="root may write anywhere")
-def test_read_only_location_is_refused_before_solving(solver, problem_file, tmp_path):
+def _deny_writes_under(folder: Path, monkeypatch, calls=("open", "mkdir", "rename")):
+    """Make ``folder`` read-only for this process as the kernel does for an ordinary user (EACCES on
+    creating, making or renaming anything inside it).  The mode bits are set too, but the superuser
+    passes those (CI may run as root), so the refusal is simulated in-process; it holds for every user.
+    Returns a switch: ``deny["on"] = False`` lets writes through until it is turned on."""
+    folder = folder.resolve()
+    deny = {"on": True}
+
+    def inside(p) -> bool:
+        try:
+            p = Path(os.fsdecode(p)).resolve()
+        except (TypeError, ValueError):
+            return False
+        return deny["on"] and (p == folder or folder in p.parents)
+
+    def guard(name, real):
+        def call(*args, **kwargs):
+            paths = args[:2] if name == "rename" else args[:1]
+            if any(inside(p) for p in paths if isinstance(p, (str, bytes, os.PathLike))):
+                raise PermissionError(errno.EACCES, os.strerror(errno.EACCES), str(paths[-1]))
+            return real(*args, **kwargs)
+        return call
+
+    for name in calls:
+        monkeypatch.setattr(os, name, guard(name, getattr(os, name)))
+    return deny
+
+
+def test_read_only_location_is_refused_before_solving(solver, problem_file, tmp_path, monkeypatch):
     ro = tmp_path / "ro"
     ro.mkdir()
     ro.chmod(0o555)
     try:
-        code, _, err = run(["solve", str(problem_file), "--out", str(ro / "run")])
+        with monkeypatch.context() as m:
+            _deny_writes_under(ro, m)
+            code, _, err = run(["solve", str(problem_file), "--out", str(ro / "run")])
     finally:
         ro.chmod(0o755)
-    assert code == 2 and "no permission to write" in err and solver == []
+    assert code == 2 and f"{ro / 'run'}: cannot be written, no permission to write in {ro}" in err
+    assert solver == [] and list(ro.iterdir()) == []
+
+
+@pytest.mark.skipif(not Path("/proc/self").is_dir(), reason="needs Linux /proc")
+def test_location_no_user_can_write_is_refused_before_solving(solver, problem_file):
+    """/proc takes no new files, not even from the superuser (whose mode bits always pass)."""
+    code, _, err = run(["solve", str(problem_file), "--out", "/proc/slingback-run"])
+    assert code == 2 and "/proc/slingback-run: cannot be written" in err and "in /proc" in err
+    assert solver == [] and "Traceback" not in err
+
+
+@pytest.mark.parametrize("denied", ["mkdir", "rename"])
+def test_location_turned_read_only_during_the_solve_keeps_the_plan(case, problem_file, tmp_path, monkeypatch,
+                                                                   denied):
+    """The folder was writable when checked and is not when the run folder is written: denied from
+    the first folder made (``mkdir``) or only at the final move into place (``rename``, after every
+    file was written into the staging folder).  The message names the run folder that could not be
+    written, the exit is non-zero, nothing (no partial staging folder) is left in the location, and
+    the solved plan is kept in the file the message names."""
+    _, _, plan = case
+    parent = tmp_path / "parent"
+    parent.mkdir()
+    deny = _deny_writes_under(parent, monkeypatch, calls=("open", "mkdir", "rename") if denied == "mkdir"
+                              else ("rename",))
+    deny["on"] = False
+
+    def solve(p, *, warm=None, progress=None):
+        deny["on"] = True  # permissions changed while solving
+        return plan
+
+    monkeypatch.setitem(sys.modules, "optimizer.solver",
+                        types.SimpleNamespace(solve=solve, SolveError=type("SolveError", (ValueError,), {})))
+    out = parent / "run"
+    code, _, err = run(["solve", str(problem_file), "--out", str(out), "--quiet"])
+    deny["on"] = False
+    assert code == 2 and "Traceback" not in err
+    assert f"the run folder {out} could not be written" in err
+    assert list(parent.iterdir()) == []
+    kept = Path(err.split("is kept in ")[1].strip())
+    try:
+        assert json.loads(kept.read_text())["burns"][0]["dv_icrf_mps"] == [1000.0 * x for x in plan.burns[0].dv]
+    finally:
+        kept.unlink()
 
 
 def test_failed_write_keeps_the_plan_and_says_where(solver, problem_file, tmp_path, monkeypatch):
@@ -168,6 +240,37 @@ def test_ctrl_c_during_solve_exits_130_with_one_line_and_writes_nothing(tmp_path
     assert lines[-1] == "slingback: interrupted (Ctrl-C); solve stopped, nothing written"
     assert "Traceback" not in err
     assert list(tmp_path.iterdir()) == []
+
+
+# Modules the command imports in turn: its own start (handler installed before them), main()
+# before the guarded block, the first heavy import inside it, the file layer, the export layer,
+# CasADi.  `python -X importtime` prints a line as each import completes (CPython's own option).
+EARLY_MARKS = ["optimizer.constants", "optimizer.interrupt", "numpy", "optimizer.problem_file", "optimizer.export",
+               "casadi"]
+
+
+@pytest.mark.parametrize("mark", EARLY_MARKS)
+def test_early_ctrl_c_exits_130_with_one_line(tmp_path, mark):
+    """Ctrl-C in the first fraction of a second (while the command is still importing) ends with exit
+    130 and one line, not death by the signal (-2) or a traceback.  Not timed: SIGINT is sent as soon
+    as the process reports that ``mark`` has been imported, so it lands somewhere after that point,
+    and every point after it must end the same way."""
+    out = tmp_path / "run"
+    p = subprocess.Popen([sys.executable, "-X", "importtime", "-m", "optimizer.cli", "solve",
+                          str(ROOT / "problems/demo-abort.toml"), "--out", str(out), "--quiet"],
+                         cwd=tmp_path, env={**os.environ, "PYTHONPATH": str(ROOT)},
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    seen = []
+    for line in p.stderr:
+        seen.append(line)
+        if line.split("|")[-1].strip() == mark:
+            p.send_signal(signal.SIGINT)
+            break
+    rest, err = p.communicate(timeout=120)
+    lines = [x for x in "".join(seen[-1:]) .splitlines() + err.splitlines() if not x.startswith("import time:")]
+    assert p.returncode == 130, (mark, lines[-20:])
+    assert len(lines) == 1 and lines[0].startswith("slingback: interrupted (Ctrl-C)"), lines
+    assert not out.exists() and list(tmp_path.iterdir()) == []
 
 
 def test_unverified_run_marks_problem_toml_not_verified(case, tmp_path):

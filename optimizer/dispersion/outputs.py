@@ -22,7 +22,7 @@ from .lincov import linear_covariance
 from .montecarlo import dispersion_model, nominal_of, run_samples
 from .sampling import DISPERSION_ATOL, DISPERSION_RTOL
 
-__all__ = ["wilson_interval", "summarise", "required_margin", "run_dispersion", "write_dispersion",
+__all__ = ["wilson_interval", "summarise", "required_margin", "run_dispersion", "write_dispersion", "temporary_store",
            "QUANTITIES", "WILSON_SOURCE"]
 
 WILSON_SOURCE = ("E. B. Wilson, 'Probable inference, the law of succession, and statistical inference', "
@@ -209,6 +209,20 @@ LIMITATIONS = [
     "Downrange and crossrange are measured on the inertial entry sphere (Earth's rotation between the "
     "entry epochs is not removed).",
 ]
+
+
+def temporary_store(resume_dir, name: str) -> tuple[Path, bool]:
+    """Where a run saves its finished samples: ``(folder, kept)``.
+
+    ``resume_dir`` when given (kept: the user's); otherwise a new folder in the system's temporary
+    folder (not kept: removed once the output folder is written, kept and named if that fails, so
+    the samples are not lost).
+    """
+    import tempfile
+
+    if resume_dir is not None:
+        return Path(resume_dir), True
+    return Path(tempfile.mkdtemp(prefix=f"slingback-{name}-dispersion-", suffix=".resume")), False
 
 
 # ------------------------------------------------------------------------------------------------

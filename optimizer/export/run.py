@@ -10,6 +10,7 @@ with ``force=True`` (new folder written, old one moved aside, new one moved in, 
 
 from __future__ import annotations
 
+import errno
 import json
 import os
 import shutil
@@ -157,10 +158,35 @@ def check_writable(folder, folder_of=None):
     probe = probe if probe.exists() else Path(".")
     if not probe.is_dir():
         raise OutputPathError(f"{what}: cannot be made, {probe} is a file, not a folder")
-    if not os.access(probe, os.W_OK | os.X_OK):
-        raise OutputPathError(f"{what}: cannot be written, no permission to write in {probe}")
-    if folder_of is not None and Path(folder_of).exists() and not os.access(Path(folder_of).parent, os.W_OK | os.X_OK):
-        raise OutputPathError(f"{what}: cannot be replaced, no permission to write in {Path(folder_of).parent}")
+    denied = _write_denied(probe)
+    if denied:
+        raise OutputPathError(f"{what}: cannot be written, {denied} {probe}")
+    if folder_of is not None and Path(folder_of).exists():
+        denied = _write_denied(Path(folder_of).parent)
+        if denied:
+            raise OutputPathError(f"{what}: cannot be replaced, {denied} {Path(folder_of).parent}")
+
+
+def _write_denied(folder: Path) -> str | None:
+    """Why nothing can be written in ``folder`` (e.g. "no permission to write in"), or None.
+
+    Mode bits alone (``os.access``) do not decide it: the superuser passes them, and a read-only
+    or special file system (/proc, /sys) still refuses.  So a file is made there and removed.
+    """
+    if not os.access(folder, os.W_OK | os.X_OK):
+        return "no permission to write in"
+    try:
+        fd, name = tempfile.mkstemp(prefix=".slingback-probe-", dir=folder)
+    except OSError as exc:
+        if exc.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+            return "no permission to write in"
+        return f"nothing can be written ({exc.strerror or exc}) in"
+    os.close(fd)
+    try:
+        os.unlink(name)
+    except OSError:
+        pass
+    return None
 
 
 def save_rescued_plan(plan, problem, out: Path) -> Path | None:
