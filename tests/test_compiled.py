@@ -144,7 +144,7 @@ def test_parametric_acceleration_matches_the_numpy_model_at_two_epochs(two_epoch
     # the coefficients or window in the vector moves the Moon by thousands of km
     from optimizer.models import build_model
     from optimizer.problem import ModelSpec
-    from optimizer.solver import model_span
+    from optimizer.solve.guess import model_span
 
     rng = np.random.default_rng(14)
     for kind in ("ephemeris", "earth-moon"):

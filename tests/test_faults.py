@@ -142,11 +142,11 @@ def test_location_turned_read_only_during_the_solve_keeps_the_plan(case, problem
                               else ("rename",))
     deny["on"] = False
 
-    def solve(p, *, warm=None, progress=None):
+    def solve(p, *, warm=None, progress=None, **_):
         deny["on"] = True  # permissions changed while solving
         return plan
 
-    monkeypatch.setitem(sys.modules, "optimizer.solver",
+    monkeypatch.setitem(sys.modules, "optimizer.solve",
                         types.SimpleNamespace(solve=solve, SolveError=type("SolveError", (ValueError,), {})))
     out = parent / "run"
     code, _, err = run(["solve", str(problem_file), "--out", str(out), "--quiet"])
