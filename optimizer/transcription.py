@@ -39,15 +39,10 @@ from dataclasses import dataclass
 
 import casadi as ca
 import numpy as np
-from scipy.integrate._ivp import dop853_coefficients as _dop853
 
 from .constants import EARTH_MOON_DISTANCE, GM_EARTH, GM_MOON
 from .models.base import inv_cube_casadi
-
-# 12-stage, 8th-order explicit Runge-Kutta weights (Dormand & Prince; Hairer, Norsett & Wanner,
-# Solving ODEs I, 2nd ed., section II.10), as scipy ships them.
-_RK_A = np.asarray(_dop853.A[:12, :12])
-_RK_B = np.asarray(_dop853.B)
+from .tableau import A as _RK_A, B as _RK_B  # Dormand & Prince's 12-stage 8th-order weights
 
 DAY = 86400.0
 #: How segments of a coast are evaluated: CasADi map over threads (two cores on the reference machine).
