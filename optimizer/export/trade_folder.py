@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from ..constants import CAUTION, SECONDS_PER_DAY as DAY
+from ..constants import CAUTION, SECONDS_PER_DAY
 from ..problem import Problem
 from ..timescales import format_epoch
 from ..trade.front import pareto
@@ -261,7 +261,8 @@ def _figures(df, front, out: Path, meta) -> dict:
     cols = np.sort(df["col"].unique())
     burn_h = (df.groupby("row")["burn_epoch_tdb_s"].first().reindex(rows).to_numpy() - t_start) / 3600.0
     if axis == "arrival_epochs":
-        col_val = (df.groupby("col")["arrival_grid_epoch_tdb_s"].first().reindex(cols).to_numpy() - t_start) / DAY
+        arrival = df.groupby("col")["arrival_grid_epoch_tdb_s"].first().reindex(cols).to_numpy()
+        col_val = (arrival - t_start) / SECONDS_PER_DAY
         ylabel = f"arrival epoch, days after {start_text}"
     else:
         col_val = df.groupby("col")["max_return_duration_days"].first().reindex(cols).to_numpy()

@@ -33,6 +33,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..constants import SECONDS_PER_DAY
 from ..events import RETURN_RADIUS_KM, encounter_radius
 from ..propagate import propagate
 
@@ -154,7 +155,7 @@ def _arrival_window(problem):
     if ret.epoch_window is not None:
         lo, hi = max(lo, ret.epoch_window[0] + 600.0), min(hi, ret.epoch_window[1] - 600.0)
     if ret.max_duration_days is not None:
-        hi = min(hi, problem.start_epoch + ret.max_duration_days * 86400.0 - 600.0)
+        hi = min(hi, problem.start_epoch + ret.max_duration_days * SECONDS_PER_DAY - 600.0)
     return lo, hi
 
 
