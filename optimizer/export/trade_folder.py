@@ -131,6 +131,8 @@ def _csv(df, path):
 
 
 def _parquet(df, path, meta) -> bool:
+    # the one import guard in the package: pyarrow is the optional `parquet` extra of
+    # pyproject.toml, so without it the trade table is written as CSV only
     try:
         import pyarrow as pa
         import pyarrow.parquet as pq
