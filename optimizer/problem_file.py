@@ -10,6 +10,14 @@ Every mistake raises :class:`ProblemError` whose message names the file, the key
 expected, e.g. ``problems/x.toml: [return].flight_path_deg: expected two numbers between -90
 and 0, got [-7, 5]``.  Unknown keys and sections are rejected (with a suggestion), so a typo can
 never silently fall back to a default.
+
+One job: reading and checking problem files.  May import: the standard library,
+:mod:`optimizer.constants`, :mod:`optimizer.timescales`, :mod:`optimizer.frames`,
+:mod:`optimizer.inputs`, :mod:`optimizer.problem`, :mod:`optimizer.problem_writer`, the model kinds
+of :mod:`optimizer.models.factory` and, when a file carries those tables, the ``[sweep]`` validator
+:mod:`optimizer.trade.spec` and the error-model reader :mod:`optimizer.dispersion.errors`; never the
+trade engine, export or plotting.  (A ``[dispersion]`` table loads the dispersion package, whose
+``__init__`` imports its runner and with it pandas.)
 """
 
 from __future__ import annotations

@@ -2,9 +2,10 @@
 three figures, ``trade-report.md`` and ``manifest.json``, written whole or not at all; and
 :func:`run_sweep_file`, what ``slingback sweep FILE`` does (read, check the output, sweep, write).
 
-One job: the trade folder.  May import: pandas, matplotlib (inside the figure function), the
-export layer's folder and manifest helpers, the file layer (to read a sweep file) and the trade
-wing (:mod:`optimizer.trade`), which never imports this.
+One job: the trade folder.  May import: numpy, pandas, matplotlib (inside the figure function),
+pyarrow (optional), the package version, :mod:`optimizer.constants`, :mod:`optimizer.problem`,
+:mod:`optimizer.timescales`, the export layer's folder and manifest helpers, the file layer (to
+read a sweep file) and the trade wing (:mod:`optimizer.trade`), which never imports this.
 """
 
 from __future__ import annotations

@@ -21,7 +21,7 @@ of Earth, the Moon passed on either side).  This module:
 
 Every seed and start is recorded (``plan.solver["search"]``) so the report can show the landscape.
 
-May import: problem, models, propagate, events.  Never the wing's ``guess``, ``ipopt`` or
+May import: constants, problem, models, propagate, events.  Never the wing's ``guess``, ``ipopt`` or
 ``strategy``: the chain calls :func:`global_solve` with a ``solve_from`` function of its own.
 """
 

@@ -5,7 +5,7 @@ position angle and the Moon-relative speed), propagate backwards to the departur
 forwards to the return perigee, and solve for both perigee altitudes.  The result is a ballistic
 free return: the seed of injection designs, and a known zero-Δv answer for the tests.
 
-May import: models, propagate and scipy.  Nothing of the NLP.
+May import: constants, models, propagate and scipy.  Nothing of the NLP.
 """
 
 from __future__ import annotations

@@ -19,8 +19,9 @@ along-velocity injection first, global search, targeted guess) -> ``_solve_loop`
 verification, refinement) -> ``_prune``.  Every step returns :class:`Solved`: the plan and the
 transcription its warm-start point belongs to (the staged solve's primer test needs both).
 
-May import everything below the wing (problem, models, propagate, verify, transcription, compiled)
-and the wing's other modules.  Never the file formats, the trade engine, export or the CLI.
+May import everything below the wing (constants, problem, models, propagate, verify, plan,
+transcription, compiled) and the wing's other modules.  Never the file formats, the trade engine,
+export or the CLI.
 """
 
 from __future__ import annotations

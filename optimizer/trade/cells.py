@@ -16,9 +16,10 @@ that neighbour, in rounds (a cell freshly verified in round k can rescue its nei
 k+1).  The tree and the rounds depend on the results alone, never on which worker finished first,
 so a sweep is deterministic and a resumed sweep equals an uninterrupted one.
 
-One job: cells.  May import: numpy, the standard library, :mod:`optimizer.problem`,
-:mod:`optimizer.plan`, :mod:`optimizer.transcription` (its thread count) and, inside a worker, the
-solver.  Never pandas, plotting, the file layer or the export layer.
+One job: cells.  May import: numpy, the standard library, :mod:`optimizer.constants`,
+:mod:`optimizer.problem`, :mod:`optimizer.plan`, the wing's ``store``,
+:mod:`optimizer.transcription` (its thread count) and, inside a worker, the solver.  Never pandas,
+plotting, the file layer or the export layer.
 """
 
 from __future__ import annotations
