@@ -2,6 +2,10 @@
 
 Results are for design studies only; they are not flight-certified, and flight use goes through the
 mission's own independent verification and licensed practice.
+
+One job: the library's entry point :func:`solve` and ``__version__``.  May import: the solve wing
+:mod:`optimizer.solve` (first, see below) and, inside :func:`solve`, the file layer's
+:func:`optimizer.problem_file.problem_to_dict` (the table form a plan carries).
 """
 
 __version__ = "0.1.0"

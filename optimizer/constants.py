@@ -3,6 +3,9 @@
 Units: km, s, km^3/s^2.  Values marked "from memory" were written down from the cited source
 without the document at hand; the tests cross-check the ones that can be checked against a
 registry library (the DE421 file itself fixes the Earth-Moon geometry the GMs must match).
+
+One job: the numbers.  May import: the standard library only; it is the bottom of the layers, every
+module may import it.
 """
 
 from __future__ import annotations

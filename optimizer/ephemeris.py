@@ -23,6 +23,10 @@ A model without a Sun (``CircularMoon``) returns ``None`` from ``sun`` and ``sun
 
 ``DE421`` reads the ephemeris file exactly but only in numpy; for CasADi, fit it over the scenario
 window with ``ChebyshevEphemeris.fit(DE421(), t_start, t_end)``.
+
+One job: where the Moon and the Sun are.  May import: numpy, the standard library,
+:mod:`optimizer.constants`, jplephem and skyfield-data (the DE421 file) and, inside the CasADi
+functions only, CasADi.
 """
 
 from __future__ import annotations

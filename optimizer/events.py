@@ -13,7 +13,8 @@ The propagator (:mod:`optimizer.propagate`) reports every local minimum of the d
   :data:`RETURN_RADIUS_KM` of Earth (half the Earth-Moon distance);
 - the **entry** is the first inbound crossing of the entry radius after the perilune.
 
-This module only chooses among events; it imports nothing of the optimiser.
+One job: choosing among events.  May import: numpy and :mod:`optimizer.constants` only (nothing that
+propagates or optimises).
 """
 
 from __future__ import annotations

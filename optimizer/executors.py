@@ -2,8 +2,9 @@
 atomic JSON write their resume folders use.
 
 One interface (``submit(fn, *args) -> handle``, ``wait_one(pending) -> [(handle, result)]``,
-``close()``) shared by the trade studies and the dispersion runs.  Imports nothing of the
-optimiser, so a runner that must stay free of CasADi (the dispersion analysis) can use it.
+``close()``) shared by the trade studies and the dispersion runs.  May import: the standard library
+(and ``distributed`` when a Dask cluster is asked for); nothing of the optimiser, so a runner that
+must stay free of CasADi (the dispersion analysis) can use it.
 """
 
 from __future__ import annotations

@@ -5,6 +5,9 @@ axes (any inertial frame works, the functions only assume one).  The frame funct
 vectors of shape (3,) or stacks of shape (N, 3), which broadcast against each other, and return
 matrices of shape (3, 3) or (N, 3, 3) whose rows are the new axes in inertial components, so
 ``M @ x_inertial`` gives the components of ``x`` in the new frame.
+
+One job: frames and elements.  May import: numpy and the standard library only (nothing of the
+optimiser).
 """
 
 from __future__ import annotations

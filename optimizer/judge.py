@@ -8,6 +8,9 @@ optimiser's nodes.
 A row is *violated* when its value lies beyond a bound by more than its tolerance, *missing* when
 the path has no such event (no lunar pass, no arrival), *active* when it lies at a bound (within
 the larger of its tolerance and :data:`ACTIVE_TOL`), else *inactive*.
+
+One job: judging constraints.  May import: numpy, the standard library, :mod:`optimizer.constants`
+and :mod:`optimizer.frames` only; the path and its events are passed in.
 """
 
 from __future__ import annotations

@@ -8,6 +8,10 @@ re-checked by another.
 The solver record and the warm start are written in our own words (:func:`solver_record`): the
 optimisation library's names stay inside the process, its final message is kept under one
 ``solver_message`` key.
+
+One job: the plan and its JSON form.  May import: numpy, the package version,
+:mod:`optimizer.constants`, :mod:`optimizer.timescales`, :mod:`optimizer.judge` (the constraint rows
+a plan carries) and :mod:`optimizer.propellant`; never the solver, the transcription or CasADi.
 """
 
 from __future__ import annotations

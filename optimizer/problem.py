@@ -2,6 +2,9 @@
 
 Units: epochs in TDB seconds past J2000, km, km/s; Δv in m/s; angles in degrees (these are the
 values an analyst types, so the dataclasses keep them as written and the transcription converts).
+
+One job: the problem's data.  May import: numpy, the standard library and :mod:`optimizer.constants`
+only (no reader, no model, no solver).
 """
 
 from __future__ import annotations

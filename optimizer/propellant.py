@@ -10,6 +10,8 @@ optional ``[spacecraft]`` table, :class:`~optimizer.problem.Propulsion`), each b
 the mass after one burn being the mass before the next.  These are first estimates: a centred
 burn neglects gravity losses, which grow with the burn's duration compared with the local orbital
 period.
+
+One job: finite-burn figures.  May import: the standard library only.
 """
 
 from __future__ import annotations

@@ -5,6 +5,8 @@ An epoch is a float, the number of TDB seconds since J2000.0 = 2000-01-01T12:00:
 exact on the proleptic Gregorian calendar.  A float epoch resolves about 0.24 us within 50 years
 of J2000 (one unit in the last place of 1.6e9 s); the conversions below add no error beyond the
 final rounding to float.
+
+One job: epochs.  May import: numpy, the standard library and :mod:`optimizer.constants` only.
 """
 
 from __future__ import annotations

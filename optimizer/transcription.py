@@ -47,17 +47,11 @@ from dataclasses import dataclass
 
 import casadi as ca
 import numpy as np
-from scipy.integrate._ivp import dop853_coefficients as _dop853
 
-from .constants import EARTH_MOON_DISTANCE, GM_EARTH, GM_MOON
+from .constants import EARTH_MOON_DISTANCE, GM_EARTH, GM_MOON, SECONDS_PER_DAY
 from .models.base import inv_cube_casadi
+from .tableau import A as _RK_A, B as _RK_B  # Dormand & Prince's 12-stage 8th-order weights
 
-# 12-stage, 8th-order explicit Runge-Kutta weights (Dormand & Prince; Hairer, Norsett & Wanner,
-# Solving ODEs I, 2nd ed., section II.10), as scipy ships them.
-_RK_A = np.asarray(_dop853.A[:12, :12])
-_RK_B = np.asarray(_dop853.B)
-
-DAY = 86400.0
 #: How segments of a coast are evaluated: CasADi map over threads (two cores on the reference machine).
 #: The default thread count; a transcription takes its own (``threads=``, or :func:`map_threads`).
 MAP_MODE, MAP_THREADS = "thread", 2
@@ -400,7 +394,7 @@ class Transcription:
             t_lo = max(t_lo, (ret.epoch_window[0] - sc.t_ref) / sc.tu)
             t_hi = min(t_hi, (ret.epoch_window[1] - sc.t_ref) / sc.tu)
         if ret.max_duration_days is not None:
-            t_hi = min(t_hi, ret.max_duration_days * DAY / sc.tu)
+            t_hi = min(t_hi, ret.max_duration_days * SECONDS_PER_DAY / sc.tu)
         v.lbx[k][-1], v.ubx[k][-1] = t_lo, t_hi
         self.arrival_tau = z[6]
 
@@ -436,7 +430,7 @@ class Transcription:
         obj = self.problem.objective
         vu_mps = self.sc.vu * 1000.0
         total = sum(self.sigma) * vu_mps  # m/s
-        duration_days = (self.arrival_tau - self.z_start[6]) * self.sc.tu / DAY
+        duration_days = (self.arrival_tau - self.z_start[6]) * self.sc.tu / SECONDS_PER_DAY
         if obj.kind == "min-dv":
             self.f = total / 100.0
         elif obj.kind == "earliest":

@@ -4,6 +4,10 @@ Uses only :mod:`optimizer.propagate` and the numpy side of the models.  The verd
 re-propagated path with the optimiser's own path (residuals in physical units) and judges every
 constraint of the problem on the re-propagated path alone (:mod:`optimizer.judge`, the one
 constraint evaluator; events as :mod:`optimizer.events` defines them).
+
+One job: the verdict.  May import: numpy, :mod:`optimizer.propagate` (which runs the numpy side of the
+models), :mod:`optimizer.events`, :mod:`optimizer.judge`, :mod:`optimizer.frames` and
+:mod:`optimizer.plan` (its records) only; never CasADi or the transcription.
 """
 
 from __future__ import annotations

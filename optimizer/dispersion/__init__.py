@@ -4,6 +4,8 @@
 re-propagates one perturbed execution, ``lincov`` maps the error model through the state
 transition matrix, ``montecarlo`` runs many samples in parallel (resumable), ``outputs`` runs the
 whole analysis and writes its folder.
+
+May import: the wing's own modules only.
 """
 
 from .errors import (DEFAULTS, ErrorModel, ErrorModelError, error_model_from_layers, error_model_from_table,

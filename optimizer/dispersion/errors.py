@@ -7,6 +7,10 @@ dotted keys, e.g. ``burn.pointing_sigma_deg=0.2``).  Every key, unit and default
 the key (exit code 2 on the command line).
 
 All sigmas are 1-sigma of zero-mean Gaussian errors, independent of one another.
+
+One job: the error model.  May import: numpy, the standard library and :mod:`optimizer.inputs` (the
+bad-input error type) only; never the file layer, which imports this module to check a
+``[dispersion]`` table.
 """
 
 from __future__ import annotations
@@ -19,7 +23,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..problem_file import ProblemError
+from ..inputs import ProblemError
 
 __all__ = ["ErrorModel", "BurnErrors", "NavigationErrors", "ErrorModelError", "DEFAULTS",
            "error_model_from_table", "error_model_from_layers", "load_error_model", "parse_overrides"]

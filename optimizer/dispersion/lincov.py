@@ -19,6 +19,9 @@ state there by ``xdot dt_e``, and the entry flight-path angle by its gradient at
 (``d`` the position relative to the Moon): the distance's rate is zero there, so the shift of the
 perilune epoch does not enter to first order.
 Sigmas follow from ``J Q J^T`` with ``Q`` the error model's covariance.
+
+One job: linear covariance.  May import: numpy, scipy, :mod:`optimizer.frames` and the wing's
+``sampling``; never CasADi or the solver.
 """
 
 from __future__ import annotations

@@ -7,6 +7,11 @@ in-process loop, a local process pool or a Dask distributed cluster (the executo
 With ``resume_dir`` every finished chunk is saved there (the resume store of
 :mod:`optimizer.trade.store`: one JSON file per chunk, written atomically) and skipped by a later
 run of the same plan, error model and seed.
+
+One job: running many samples.  May import: numpy, pandas, :mod:`optimizer.constants`,
+:mod:`optimizer.timescales`, :mod:`optimizer.models.factory`, :mod:`optimizer.executors`, the resume
+store :mod:`optimizer.trade.store` and the wing's ``errors`` and ``sampling``; never the solver or
+the transcription.
 """
 
 from __future__ import annotations

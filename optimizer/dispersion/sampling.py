@@ -9,6 +9,9 @@ time).  A sample is therefore the same whichever worker draws it and however man
 The per-sample quantities come from :func:`outcome`, on the arcs of :func:`propagate_burns`: the
 perilune is the closest of the perilune events, the arrival the first inbound entry-interface
 crossing after it.
+
+One job: one perturbed execution and what it gives.  May import: numpy, :mod:`optimizer.frames` and
+:mod:`optimizer.propagate` only.
 """
 
 from __future__ import annotations

@@ -4,6 +4,8 @@ and re-checks.
 Public API: :func:`write_run`, :func:`sample_plan`, :func:`oem_text`, :func:`write_plot_files`,
 :func:`opm_text`, :func:`report_markdown`, :func:`constraint_rows`, :func:`read_plan`,
 :func:`recheck`, :func:`write_manifest`.
+
+May import: the export layer's own modules only.
 """
 
 from .check import PlanFileError, claim_differences, plan_path, plan_problem, read_plan, read_plan_data, recheck

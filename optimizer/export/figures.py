@@ -8,6 +8,10 @@
 
 Markers: burns are upward triangles, the perilune a diamond, the arrival a square; the path is
 drawn from the independent re-propagation.
+
+One job: a plan's figures.  May import: matplotlib, numpy, the package version,
+:mod:`optimizer.constants`, :mod:`optimizer.frames` and :mod:`optimizer.timescales`; the sampled
+path is passed in.
 """
 
 from __future__ import annotations

@@ -3,6 +3,9 @@
 It carries what the CSV files no longer do in comment lines (software, model, status, the
 caution) and, for every file of the folder, its role, media type, size and SHA-256; for every CSV
 file, its columns with their units and meanings (:data:`optimizer.export.tables.COLUMNS`).
+
+One job: ``manifest.json``.  May import: the standard library, the package version,
+:mod:`optimizer.constants` and the export layer's ``tables`` (the column meanings).
 """
 
 from __future__ import annotations

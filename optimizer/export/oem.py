@@ -3,6 +3,10 @@
 One metadata/data segment per coast arc between burns (a burn epoch ends one segment, with the
 pre-burn state, and starts the next, with the post-burn state).  States are the independent
 re-propagation (see :mod:`optimizer.export.sampling`), Earth-centred, ICRF axes, TDB, km and km/s.
+
+One job: OEM text.  May import: the standard library, the package version,
+:mod:`optimizer.constants` and :mod:`optimizer.timescales`; the states are passed in, already
+sampled.
 """
 
 from __future__ import annotations

@@ -16,6 +16,9 @@ Maneuvers need the spacecraft's mass: ``MAN_DELTA_MASS`` is mandatory and must b
 (:mod:`optimizer.propellant`); without it no OPM can be written.  Burns are centred on the
 impulse, so ``MAN_EPOCH_IGNITION`` is half the duration before it.  Numbers are written with all
 the digits of the double they come from (``repr``), so they read back equal to ``plan.json``.
+
+One job: OPM text.  May import: numpy, the package version, :mod:`optimizer.constants`,
+:mod:`optimizer.problem`, :mod:`optimizer.propellant` and :mod:`optimizer.timescales`.
 """
 
 from __future__ import annotations

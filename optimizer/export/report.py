@@ -2,6 +2,11 @@
 
 Constraint rows come from the one evaluator, :mod:`optimizer.judge`, on the independent
 re-propagation: the same rows decide the verdict.
+
+One job: the report.  May import: numpy, the package version, :mod:`optimizer.constants`,
+:mod:`optimizer.timescales`, :mod:`optimizer.judge`, :mod:`optimizer.plan`,
+:mod:`optimizer.propellant`, the global layer's summary of failed starts
+(:mod:`optimizer.solve.search`) and, for a re-check, the export layer's ``check``.
 """
 
 from __future__ import annotations

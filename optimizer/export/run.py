@@ -6,6 +6,10 @@ the report); the OPM also needs the problem's ``[spacecraft]`` table.
 Everything is written into a temporary folder beside the destination and moved into place only
 when complete, so a run folder is either whole or absent.  An existing folder is replaced only
 with ``force=True`` (new folder written, old one moved aside, new one moved in, old one deleted).
+
+One job: the run folder.  May import: the export layer's other modules, the package version,
+:mod:`optimizer.constants`, :mod:`optimizer.timescales` and the file layer's writer
+(``problem.toml``, through :mod:`optimizer.problem_file`).
 """
 
 from __future__ import annotations

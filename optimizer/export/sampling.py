@@ -7,6 +7,10 @@ Moon: each sample sweeps at most ``sweep_deg`` of arc as seen from the nearer bo
 interface and ~15 s apart at a low perilune.  Burn epochs, event epochs and arc ends are
 always samples.  Sample epochs are rounded to whole microseconds (what the files print), so every
 printed state is the propagated state at exactly the printed epoch.
+
+One job: the states an export prints.  May import: numpy, :mod:`optimizer.timescales`,
+:mod:`optimizer.models.factory` and :mod:`optimizer.verify` (the re-propagation); never the
+optimiser's nodes or the transcription.
 """
 
 from __future__ import annotations

@@ -4,6 +4,9 @@ The CSV files are plain: the header on line 1, one row per record, no comment li
 ``pandas.read_csv(path)`` and a spreadsheet read them as they are.  What a comment preamble used
 to say (software, model, status, caution) and the unit and meaning of every column go to the run
 folder's ``manifest.json`` (:data:`COLUMNS`, :mod:`optimizer.export.manifest`).
+
+One job: the tables.  May import: numpy, pandas, :mod:`optimizer.propellant` and
+:mod:`optimizer.timescales`.
 """
 
 from __future__ import annotations

@@ -2,9 +2,10 @@
 three figures, ``trade-report.md`` and ``manifest.json``, written whole or not at all; and
 :func:`run_sweep_file`, what ``slingback sweep FILE`` does (read, check the output, sweep, write).
 
-One job: the trade folder.  May import: pandas, matplotlib (inside the figure function), the
-export layer's folder and manifest helpers, the file layer (to read a sweep file) and the trade
-wing (:mod:`optimizer.trade`), which never imports this.
+One job: the trade folder.  May import: numpy, pandas, matplotlib (inside the figure function),
+pyarrow (optional), the package version, :mod:`optimizer.constants`, :mod:`optimizer.problem`,
+:mod:`optimizer.timescales`, the export layer's folder and manifest helpers, the file layer (to
+read a sweep file) and the trade wing (:mod:`optimizer.trade`), which never imports this.
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from ..constants import CAUTION, SECONDS_PER_DAY as DAY
+from ..constants import CAUTION, SECONDS_PER_DAY
 from ..problem import Problem
 from ..timescales import format_epoch
 from ..trade.front import pareto
@@ -131,6 +132,8 @@ def _csv(df, path):
 
 
 def _parquet(df, path, meta) -> bool:
+    # the one import guard in the package: pyarrow is the optional `parquet` extra of
+    # pyproject.toml, so without it the trade table is written as CSV only
     try:
         import pyarrow as pa
         import pyarrow.parquet as pq
@@ -261,7 +264,8 @@ def _figures(df, front, out: Path, meta) -> dict:
     cols = np.sort(df["col"].unique())
     burn_h = (df.groupby("row")["burn_epoch_tdb_s"].first().reindex(rows).to_numpy() - t_start) / 3600.0
     if axis == "arrival_epochs":
-        col_val = (df.groupby("col")["arrival_grid_epoch_tdb_s"].first().reindex(cols).to_numpy() - t_start) / DAY
+        arrival = df.groupby("col")["arrival_grid_epoch_tdb_s"].first().reindex(cols).to_numpy()
+        col_val = (arrival - t_start) / SECONDS_PER_DAY
         ylabel = f"arrival epoch, days after {start_text}"
     else:
         col_val = df.groupby("col")["max_return_duration_days"].first().reindex(cols).to_numpy()

@@ -16,6 +16,7 @@ import math
 
 import numpy as np
 
+from ..constants import SECONDS_PER_DAY
 from ..events import LUNAR_SPHERE_KM, lunar_encounter
 from ..propagate import propagate
 from ..transcription import Transcription, is_injection
@@ -66,7 +67,7 @@ def _return_momentum(model, t_peri, y_peri):
     function of the burn it has a flat minimum at ``h = 0`` (a path through Earth's centre) where
     Newton steps fail; ``h`` along a fixed normal is linear there, so that is what is targeted.
     """
-    y = _coast(model, t_peri, y_peri, t_peri + 86400.0, events=()).y[:, -1]
+    y = _coast(model, t_peri, y_peri, t_peri + SECONDS_PER_DAY, events=()).y[:, -1]
     return np.cross(y[:3], y[3:])
 
 
@@ -248,7 +249,7 @@ def injection_guess(problem, model, tr: Transcription):
     lo, hi = problem.lunar.altitude_km
     alt = min(0.5 * (lo + hi), lo + 300.0)
     ret_alt = _target_radius(problem, model) - model.earth.radius
-    t_p, seed = t_mid + 3.0 * 86400.0, None
+    t_p, seed = t_mid + 3.0 * SECONDS_PER_DAY, None
     for _ in range(3):  # move the perilune so that the departure falls mid-window
         try:
             seed = circumlunar(model, t_p, alt, st.altitude_km, ret_alt,
@@ -290,7 +291,7 @@ def _sample_phases(problem, model, tr, arcs, burns, t_start):
     if arrival is None:
         arrival = next((e for e in arc.events if e.t > peri.t and e.name == "perigee"
                         and np.linalg.norm(e.y[:3]) < 100000.0), None)
-    arrival_t = arrival.t if arrival is not None else min(peri.t + 3.0 * 86400.0, arc.t[-1])
+    arrival_t = arrival.t if arrival is not None else min(peri.t + 3.0 * SECONDS_PER_DAY, arc.t[-1])
     cuts = [t_start]
     for p in tr.phases:
         if p.end == "burn":
@@ -380,7 +381,7 @@ def path_guess(problem, model, tr, t0, y0, burns, start=None):
     last = pieces[-1]
     name = "entry" if problem.arrival.target == "entry" else "perigee"
     arrival = next((e for e in last.events if e.t > peri.t and e.name == name), None)
-    arrival_t = arrival.t if arrival is not None else min(peri.t + 3.0 * 86400.0, last.t[-1])
+    arrival_t = arrival.t if arrival is not None else min(peri.t + 3.0 * SECONDS_PER_DAY, last.t[-1])
     cuts = [t0] + [burns[p.burn][0] if p.end == "burn" else peri.t if p.end == "perilune" else arrival_t
                    for p in tr.phases]
     if np.any(np.diff(cuts) < 0):
@@ -401,5 +402,5 @@ def relayout(tr_from: Transcription, x, tr_to: Transcription) -> np.ndarray:
 
 def model_span(problem) -> tuple[float, float]:
     """Epochs a problem's model must cover (the injection seed looks up to 3 days back)."""
-    back = 3.0 * 86400.0 if is_injection(problem) else 0.0
+    back = 3.0 * SECONDS_PER_DAY if is_injection(problem) else 0.0
     return problem.start_epoch - back, problem.latest_epoch()

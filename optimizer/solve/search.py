@@ -21,7 +21,7 @@ of Earth, the Moon passed on either side).  This module:
 
 Every seed and start is recorded (``plan.solver["search"]``) so the report can show the landscape.
 
-May import: problem, models, propagate, events.  Never the wing's ``guess``, ``ipopt`` or
+May import: constants, problem, models, propagate, events.  Never the wing's ``guess``, ``ipopt`` or
 ``strategy``: the chain calls :func:`global_solve` with a ``solve_from`` function of its own.
 """
 
@@ -33,6 +33,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..constants import SECONDS_PER_DAY
 from ..events import RETURN_RADIUS_KM, encounter_radius
 from ..propagate import propagate
 
@@ -157,7 +158,7 @@ def _arrival_window(problem):
     if ret.epoch_window is not None:
         lo, hi = max(lo, ret.epoch_window[0] + 600.0), min(hi, ret.epoch_window[1] - 600.0)
     if ret.max_duration_days is not None:
-        hi = min(hi, problem.start_epoch + ret.max_duration_days * 86400.0 - 600.0)
+        hi = min(hi, problem.start_epoch + ret.max_duration_days * SECONDS_PER_DAY - 600.0)
     return lo, hi
 
 

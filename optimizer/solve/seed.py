@@ -5,7 +5,7 @@ position angle and the Moon-relative speed), propagate backwards to the departur
 forwards to the return perigee, and solve for both perigee altitudes.  The result is a ballistic
 free return: the seed of injection designs, and a known zero-Δv answer for the tests.
 
-May import: models, propagate and scipy.  Nothing of the NLP.
+May import: constants, models, propagate and scipy.  Nothing of the NLP.
 """
 
 from __future__ import annotations
@@ -15,6 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.optimize import fsolve
 
+from ..constants import SECONDS_PER_DAY
 from ..propagate import Event, propagate
 
 SEED_RTOL = 1e-11
@@ -49,7 +50,7 @@ def perilune_state(model, t_p, alt_km, angle, speed, tilt=0.0):
 def _near_perigee(model, t_p, y, days, sign, rtol=SEED_RTOL):
     # the first perigee ends the arc: from a far-side perilune the distance to Earth falls until
     # the perigee wanted (a path whose first perigee is far never comes near Earth in time)
-    arc = propagate(model, t_p, y, t_p + sign * days * 86400.0, events=("perigee",), terminal=("perigee",),
+    arc = propagate(model, t_p, y, t_p + sign * days * SECONDS_PER_DAY, events=("perigee",), terminal=("perigee",),
                     rtol=rtol, atol=rtol)
     near = [e for e in arc.events if np.linalg.norm(e.y[:3]) < 150000.0]
     return near[0] if near else None

@@ -19,8 +19,9 @@ along-velocity injection first, global search, targeted guess) -> ``_solve_loop`
 verification, refinement) -> ``_prune``.  Every step returns :class:`Solved`: the plan and the
 transcription its warm-start point belongs to (the staged solve's primer test needs both).
 
-May import everything below the wing (problem, models, propagate, verify, transcription, compiled)
-and the wing's other modules.  Never the file formats, the trade engine, export or the CLI.
+May import everything below the wing (constants, problem, models, propagate, verify, plan,
+transcription, compiled) and the wing's other modules.  Never the file formats, the trade engine,
+export or the CLI.
 """
 
 from __future__ import annotations
@@ -125,8 +126,9 @@ def _design(problem, warm, model, run) -> Solved:
         if held_burns(problem):
             # staged first, each stage with its own continuation: continuing the whole layout
             # from a cheaper model's plan carries its zero held burns, a degenerate start
-            # (measured, problems/demo-injection.toml: 300 + 300 + 137 iterations in the
-            # ephemeris stage, where the one-burn layout's own continuation needs 3x fewer)
+            # (measured on problems/demo-injection.toml: the ephemeris stage then runs into the
+            # iteration cap and needs retries; the one-burn layout's own continuation needs far
+            # fewer iterations)
             model = build_model(problem.model, *model_span(problem))
             return _staged(problem, model, run, stages, t_start, continued=True)
         warm, stages = _continuation(problem, run)

@@ -16,9 +16,10 @@ that neighbour, in rounds (a cell freshly verified in round k can rescue its nei
 k+1).  The tree and the rounds depend on the results alone, never on which worker finished first,
 so a sweep is deterministic and a resumed sweep equals an uninterrupted one.
 
-One job: cells.  May import: numpy, the standard library, :mod:`optimizer.problem`,
-:mod:`optimizer.plan`, :mod:`optimizer.transcription` (its thread count) and, inside a worker, the
-solver.  Never pandas, plotting, the file layer or the export layer.
+One job: cells.  May import: numpy, the standard library, :mod:`optimizer.constants`,
+:mod:`optimizer.problem`, :mod:`optimizer.plan`, the wing's ``store``,
+:mod:`optimizer.transcription` (its thread count) and, inside a worker, the solver.  Never pandas,
+plotting, the file layer or the export layer.
 """
 
 from __future__ import annotations
@@ -32,7 +33,7 @@ from contextlib import nullcontext
 
 import numpy as np
 
-from ..constants import SECONDS_PER_DAY as DAY
+from ..constants import SECONDS_PER_DAY
 from ..plan import Plan
 from ..problem import Objective, Problem
 from .store import StoreKind
@@ -139,8 +140,8 @@ def record(plan: Plan, problem: Problem, burn_index: int, wall: float, cpu: floa
     rec.update(solved_burn_epoch_tdb_s=burn.epoch, total_dv_mps=plan.total_dv_mps,
                dv_r_mps=1000.0 * burn.dv_rtn[0], dv_t_mps=1000.0 * burn.dv_rtn[1],
                dv_n_mps=1000.0 * burn.dv_rtn[2], arrival_epoch_tdb_s=arr.epoch,
-               return_duration_days=(arr.epoch - problem.start_epoch) / DAY,
-               burn_to_arrival_days=(arr.epoch - burn.epoch) / DAY, perilune_epoch_tdb_s=peri.epoch,
+               return_duration_days=(arr.epoch - problem.start_epoch) / SECONDS_PER_DAY,
+               burn_to_arrival_days=(arr.epoch - burn.epoch) / SECONDS_PER_DAY, perilune_epoch_tdb_s=peri.epoch,
                perilune_altitude_km=peri.altitude_km,
                arrival_flight_path_deg=arr.flight_path_deg if arr.flight_path_deg is not None else math.nan,
                arrival_speed_kms=arr.speed_kms if arr.speed_kms is not None else math.nan,
@@ -240,7 +241,7 @@ def seed_cell(rows, cols, axis_key, ref_rec, problem, burn_index=0):
         return r0, (0 if axis_key == "arrival_epochs" else len(cols) - 1)
     if axis_key == "arrival_epochs":
         return r0, int(np.argmin(np.abs(np.asarray(cols) - ta)))
-    dur = (ta - problem.start_epoch) / DAY
+    dur = (ta - problem.start_epoch) / SECONDS_PER_DAY
     longer = [i for i, d in enumerate(cols) if d >= dur]
     return r0, (longer[0] if longer else len(cols) - 1)
 

@@ -2,8 +2,9 @@
 sweep re-solved as a full plan.
 
 One job: choosing among the cells of a finished sweep.  May import: numpy, pandas,
-:mod:`optimizer.trade.cells`, :mod:`optimizer.trade.store` and (when a cell is re-solved) the
-solver and the models.  Never plotting, the file layer or the export layer.
+:mod:`optimizer.plan`, :mod:`optimizer.problem`, :mod:`optimizer.trade.cells`,
+:mod:`optimizer.trade.store` and (when a cell is re-solved) the solver and the models.  Never
+plotting, the file layer or the export layer.
 """
 
 from __future__ import annotations

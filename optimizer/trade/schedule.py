@@ -12,9 +12,12 @@ past J2000; return duration counts from the problem's start epoch): :data:`COLUM
 values are filled only for verified cells (from the independent re-propagation); a cell that
 failed keeps its status and reason and NaN values.
 
-One job: scheduling the cells of one sweep.  May import: numpy, pandas, the trade wing's
-``spec``, ``cells`` and ``store``, :mod:`optimizer.executors`, and the models and solver (to build
-the sweep's one model).  Never plotting, the file layer or the export layer.
+One job: scheduling the cells of one sweep.  May import: numpy, pandas, the package version,
+:mod:`optimizer.constants`, :mod:`optimizer.timescales`, :mod:`optimizer.plan`,
+:mod:`optimizer.problem`, the trade wing's ``spec``, ``cells`` and ``store``,
+:mod:`optimizer.executors`, the models and solver (to build the sweep's one model) and, lazily, the
+file layer's ``problem_to_dict`` (the sweep's fingerprint holds the problem's table form: the one
+reach upward).  Never plotting or the export layer.
 """
 
 from __future__ import annotations

@@ -4,7 +4,8 @@ the key.
 
 One job: turn a ``[sweep]`` table into a :class:`SweepSpec` and check a grid against its problem
 (:func:`check_grid`, used by both the table and the library call).  May import: numpy, the
-standard library, :mod:`optimizer.inputs`, :mod:`optimizer.problem`, :mod:`optimizer.timescales`.
+standard library, :mod:`optimizer.constants`, :mod:`optimizer.inputs`, :mod:`optimizer.problem`,
+:mod:`optimizer.timescales`.
 Never the trade engine, pandas, plotting or the file layer: reading a problem file imports this.
 """
 

@@ -7,9 +7,9 @@ run's definition and the definition itself); ``<folder>/<items>/<name>.json`` ho
 with the fingerprint.  Every file is written atomically (temporary file, synced, renamed), so an
 interrupted run leaves whole files only; a file of another run, or damaged, counts as absent.
 
-One job: that folder.  May import: the standard library and :mod:`optimizer.executors` (the atomic
-write); it knows nothing of what the results mean, so any runner (the dispersion runs, which
-must stay free of CasADi) can use it.
+One job: that folder.  May import: the standard library, the package version and
+:mod:`optimizer.executors` (the atomic write); it knows nothing of what the results mean, so any
+runner (the dispersion runs, which must stay free of CasADi) can use it.
 """
 
 from __future__ import annotations
