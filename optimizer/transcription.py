@@ -325,7 +325,6 @@ class Transcription:
     def _link_phases(self, v):
         """First node of each phase: the start state, or the previous end plus the burn."""
         problem, sc = self.problem, self.sc
-        win_lo, win_hi = [], []
         for p, nodes in zip(self.phases, self.nodes):
             if p.index == 0 and not is_injection(problem):
                 k = self._block(p)
