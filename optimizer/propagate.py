@@ -10,7 +10,9 @@ Two engines take the same DOP853 steps: ``"scipy"`` (``solve_ivp`` on the model'
 right-hand side; always available) and ``"c"`` (:mod:`optimizer.native`: the whole coast stepped
 in a small hand-written C file, the same events found by scipy's own event search on the dense
 output; Earth-centred models only, scipy serves the others and machines without a C compiler).
-``$SLINGBACK_PROPAGATOR`` chooses the default (``scipy`` unless set).
+``$SLINGBACK_PROPAGATOR`` chooses the default: ``c`` unless set (it falls back to scipy by itself;
+on the out-of-family benchmark's 20 tuning cases run with both engines, the same answers to
+1e-6 m/s; the timings are in the README).
 """
 
 from __future__ import annotations
@@ -30,8 +32,9 @@ ENGINES = ("scipy", "c")
 
 
 def default_engine() -> str:
-    """The engine from ``$SLINGBACK_PROPAGATOR`` (``scipy`` or ``c``; ``scipy`` if unset)."""
-    value = os.environ.get("SLINGBACK_PROPAGATOR", "scipy").strip().lower() or "scipy"
+    """The engine from ``$SLINGBACK_PROPAGATOR`` (``scipy`` or ``c``; ``c`` if unset, which falls
+    back to scipy where it cannot serve)."""
+    value = os.environ.get("SLINGBACK_PROPAGATOR", "c").strip().lower() or "c"
     if value not in ENGINES:
         raise ValueError(f"SLINGBACK_PROPAGATOR={value!r}: expected one of {', '.join(ENGINES)}")
     return value

@@ -91,9 +91,11 @@ class _Pass:
     def __init__(self, model, t0, y0, t_end, r_enc, moon_needed, problem):
         self.ok = False
         if moon_needed:
-            # an impact ends the leg (a path through a body would stall the integrator)
-            arc = propagate(model, t0, y0, t_end, events=("perilune", "impact_earth", "impact_moon"),
-                            terminal=("perilune", "impact_earth", "impact_moon"),
+            # an Earth impact ends the leg (a path through the Earth would stall the integrator); a
+            # pass below the Moon's surface goes on to its closest approach, which keeps the
+            # targeting's functions smooth across the surface
+            arc = propagate(model, t0, y0, t_end, events=("perilune", "impact_earth"),
+                            terminal=("perilune", "impact_earth"),
                             perilune_within=r_enc, rtol=SCREEN_RTOL, atol=SCREEN_ATOL)
             peri = arc.first("perilune")
             if peri is None:
@@ -365,7 +367,7 @@ def ballistic_path(problem, model, t_end):
     """The coast with every burn at zero (the screen's pre-burn states), with its lunar encounter."""
     st = problem.start
     arc = propagate(model, st.epoch, np.asarray(st.state, float), t_end,
-                    events=("perilune", "impact_earth", "impact_moon"), terminal=("impact_earth", "impact_moon"),
+                    events=("perilune", "impact_earth"), terminal=("impact_earth",),
                     perilune_within=encounter_radius(problem), rtol=SCREEN_RTOL, atol=SCREEN_ATOL)
     peri = arc.first("perilune")
     return arc, (None if peri is None else peri.t)
