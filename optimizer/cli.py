@@ -3,6 +3,8 @@
 Exit codes: 0 solved and verified (or the command succeeded), 2 bad input (problem file, plan
 file, arguments, an output folder that exists or cannot be written), 3 no verified solution (the
 reason is printed), 130 interrupted (Ctrl-C; nothing is written).
+
+May import every layer of the package (it is the top): the file layer, the solve wing, the trade engine, dispersion and export.
 """
 
 from __future__ import annotations

@@ -35,6 +35,8 @@ When: ``$SLINGBACK_COMPILE``
 * ``off``: always interpreted (the test suite's setting, ``tests/conftest.py``: it solves many
   structures once each and must not leave compilers running).
 * ``wait``: compile now if needed and use it (benchmarks, batch sweeps that will amortise it).
+
+May import the standard library, numpy and CasADi only (no other module of the package).
 """
 
 from __future__ import annotations

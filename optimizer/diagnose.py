@@ -7,6 +7,8 @@ defines them) and compares its lunar pass with the epoch the problem lets the pa
 arrival window or a duration that ends before the lunar pass can never be met, since the return
 is counted only after the perilune.  Burns move the lunar pass a little, so this is a diagnosis
 of the burn-free coast, not a proof; it is offered only when the solver has already failed.
+
+May import problem, timescales, events, the model factory and the propagator; never the solve wing or the NLP.
 """
 
 from __future__ import annotations

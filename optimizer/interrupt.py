@@ -7,6 +7,8 @@ on (retries, the next start, the export).  :func:`honour_ctrl_c` keeps Python's 
 been pressed, a watcher thread sets ``KeyboardInterrupt`` as the main thread's pending exception
 (raised at its next Python instruction, i.e. as soon as CasADi returns) and interrupts it again every
 0.2 s (which stops any further IPOPT solve at its next iteration) until the block ends.
+
+May import the standard library only.
 """
 
 from __future__ import annotations

@@ -36,6 +36,8 @@ two problems of the same structure (phases, mesh, burn kinds, model kind and ser
 the same parametric functions, so one compiled library serves both (``optimizer/compiled.py``).
 ``self.nlp`` is the parameter-free NLP (``p`` replaced by its value) that nlpsol and the tests
 use; ``self.nlp_parametric`` keeps ``p``.
+
+May import constants, the models' base, tableau, numpy and CasADi; never the propagator or verifier (they referee it).
 """
 
 from __future__ import annotations

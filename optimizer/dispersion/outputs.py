@@ -2,6 +2,8 @@
 
 The folder is written into a temporary folder beside the destination and moved into place whole
 (:func:`optimizer.export.run.staged_folder`).
+
+May import constants, timescales, the file layer, the solve wing (the margin re-solve), export and the dispersion wing's own modules; pandas and matplotlib.
 """
 
 from __future__ import annotations

@@ -7,6 +7,8 @@ constraint and compares the result with the plan's claimed events.  :func:`claim
 compares every other figure the file claims (status, total and per-burn Δv, RTN components, the
 verdict and its tolerances, epochs given twice) with the one re-derived from the burns.  Nothing of the optimiser is
 involved.
+
+May import frames, timescales, plan, problem_file, propellant, propagate, verify and export's sampling; never the solve wing or CasADi.
 """
 
 from __future__ import annotations

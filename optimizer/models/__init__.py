@@ -1,4 +1,7 @@
-"""Force models: each with a numpy acceleration and a separately written CasADi one."""
+"""Force models: each with a numpy acceleration and a separately written CasADi one.
+
+May import the models' own modules only.
+"""
 
 from .base import Body, ForceModel
 from .cr3bp import CR3BP

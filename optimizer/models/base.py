@@ -6,6 +6,8 @@ compare the two at random points.
 
 State vectors are ``[x, y, z, vx, vy, vz]``.  Earth-centred models work in km, km/s and TDB seconds
 past J2000 on ICRF axes; the CR3BP works in its own non-dimensional rotating units.
+
+May import numpy (and CasADi inside the CasADi methods) only.
 """
 
 from __future__ import annotations

@@ -3,6 +3,8 @@
 Units: length = Earth-Moon distance, time = 1/(mean motion), mass = Earth + Moon; Earth sits at
 ``(-mu, 0, 0)`` and the Moon at ``(1 - mu, 0, 0)``; z is along the Moon's orbital angular
 momentum.  Time ``t`` is non-dimensional time since the model's epoch.
+
+May import constants, the models' base, numpy, scipy, and CasADi inside the CasADi methods.
 """
 
 from __future__ import annotations

@@ -10,6 +10,8 @@ One class serves two named configurations:
 The frame is Earth-centred, so each third body also carries the indirect term (its pull on
 Earth's centre).  J2 acts about the ICRF z axis: the true pole has moved about 0.4 degrees from it
 by precession since J2000, a small error on a perturbation that is itself small at lunar distance.
+
+May import constants, the models' base, numpy, and CasADi inside the CasADi methods.
 """
 
 from __future__ import annotations

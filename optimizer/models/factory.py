@@ -1,4 +1,7 @@
-"""Build a force model from a problem's :class:`~optimizer.problem.ModelSpec`."""
+"""Build a force model from a problem's :class:`~optimizer.problem.ModelSpec`.
+
+May import constants, ephemeris and the models' own modules.
+"""
 
 from __future__ import annotations
 

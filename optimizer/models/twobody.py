@@ -1,4 +1,7 @@
-"""Two-body (Kepler) model about Earth."""
+"""Two-body (Kepler) model about Earth.
+
+May import constants, the models' base, numpy, and CasADi inside the CasADi methods.
+"""
 
 from __future__ import annotations
 
