@@ -38,13 +38,49 @@ def fresh():
 
 
 def test_generator_is_deterministic(fresh):
-    # against the copy written by an earlier run (another process) when there is one, else a
-    # second generation in this process
+    """The same seed in the same process and propagator engine gives the same case, bit for bit."""
+    again = gc.make_case(FAST_SEED)
+    assert again.key == fresh.key
+    assert again.problem == fresh.problem
+    assert again.planted_epoch == fresh.planted_epoch and again.planted_dv == fresh.planted_dv
+
+
+def test_generator_agrees_with_its_cached_copy_to_rounding(fresh):
+    """Against the copy in ``global_cases.json`` (written by another process, possibly another
+    machine or propagator engine): the drawn numbers (epochs, windows, ranges, the planted burn)
+    are equal, and the start state, found by root-finding and a back-propagation at 1e-12, agrees to
+    rounding.  Measured between the C and scipy engines on this seed: 8e-6 km and 3e-10 km/s; the
+    bounds are 1e-3 km and 1e-7 km/s (an error in the generator moves it by kilometres).  The key is a
+    hash of the exact numbers, so it is not compared here: a case regenerated elsewhere only costs
+    a recomputed reference."""
     cached = _cached([FAST_SEED])
-    other = cached[0] if cached else gc.make_case(FAST_SEED)
-    assert other.key == fresh.key
-    assert other.problem == fresh.problem
-    assert other.planted_epoch == fresh.planted_epoch and other.planted_dv == fresh.planted_dv
+    if not cached:
+        pytest.skip("no cached copy of the case")
+    other = cached[0]
+    a, b = np.asarray(other.problem.start.state), np.asarray(fresh.problem.start.state)
+    assert np.max(np.abs(a[:3] - b[:3])) < 1e-3 and np.max(np.abs(a[3:] - b[3:])) < 1e-7
+    # every other number of the problem (windows, ranges drawn around the ballistic path's figures)
+    # to 1e-9 relative: a figure read off a propagation may differ in its last digits
+    da, db = other.problem.to_dict(), fresh.problem.to_dict()
+    da["start"]["state"] = db["start"]["state"] = None
+    _close(da, db, "problem")
+    assert other.planted_epoch == pytest.approx(fresh.planted_epoch, rel=0, abs=1e-3)
+    assert np.allclose(other.planted_dv, fresh.planted_dv, rtol=1e-9, atol=0)
+
+
+def _close(x, y, where):
+    if isinstance(x, dict):
+        assert sorted(x) == sorted(y), where
+        for k in x:
+            _close(x[k], y[k], f"{where}.{k}")
+    elif isinstance(x, (list, tuple)):
+        assert len(x) == len(y), where
+        for i, (u, v) in enumerate(zip(x, y)):
+            _close(u, v, f"{where}[{i}]")
+    elif isinstance(x, float) and isinstance(y, float):
+        assert x == pytest.approx(y, rel=1e-9, abs=0), where
+    else:
+        assert x == y, where
 
 
 def test_halves_split_by_parity():
