@@ -18,12 +18,19 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[2]
 
 
+def _terminal_sigint():
+    """SIGINT in the child as from a terminal (a runner started in the background has it ignored)."""
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+    signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
+
+
 def once(delay: float) -> None:
     with tempfile.TemporaryDirectory() as tmp:
         out = Path(tmp) / "run"
         p = subprocess.Popen([sys.executable, "-m", "optimizer.cli", "solve", str(ROOT / "problems/demo-abort.toml"),
                               "--out", str(out)], cwd=tmp, env={**os.environ, "PYTHONPATH": str(ROOT)},
-                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                             preexec_fn=_terminal_sigint)
         time.sleep(delay)
         if p.poll() is not None:
             print(f"delay {delay:5.1f} s: the solve had already ended (exit {p.returncode})")
