@@ -306,6 +306,8 @@ def cmd_sweep(args) -> int:
     from .problem_file import load_sweep_file
     from .trade import progress_text
 
+    # a sweep solves one NLP structure many times: compile it in the background unless told otherwise
+    os.environ.setdefault("SLINGBACK_COMPILE", "auto")
     problem, _ = load_sweep_file(args.file)  # bad input stops here, before anything is solved
     out = Path(args.out) if args.out else Path("outputs") / f"{problem.name}-trade"
     say = None if args.quiet else (lambda p: _err(progress_text(p)))

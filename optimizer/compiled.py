@@ -26,14 +26,16 @@ message and is not retried for that key.
 
 When: ``$SLINGBACK_COMPILE``
 
-* ``auto`` (default): load the library if it exists; otherwise start the compiler in the
+* ``auto`` (the default of ``slingback sweep``, whose many cells of one structure repay it): load
+  the library if it exists; otherwise start the compiler in the
   background (one compile at a time per cache folder) and solve interpreted meanwhile; a later
   build of the same structure (the next run, or the next cache miss) uses the library.  Since a
   library serves every epoch of its structure, the cache fills with the few structures a user
   solves and the compile is paid once per machine (measured with ``bench_compiled.py``: 462 s of
   wall for -O1 with the machine loaded, then 12x faster IPOPT iterations; repaid after ~6 solves).
-* ``off``: always interpreted (the test suite's setting, ``tests/conftest.py``: it solves many
-  structures once each and must not leave compilers running).
+* ``off`` (the default everywhere else: a single solve would not repay minutes of compiling, and a
+  command must not leave a compiler running after it ends): always interpreted; the test suite
+  also sets it (``tests/conftest.py``).
 * ``wait``: compile now if needed and use it (benchmarks, batch sweeps that will amortise it).
 
 May import the standard library, numpy and CasADi only (no other module of the package).
@@ -68,7 +70,7 @@ _LOADED: dict = {}  # library path -> {name: external Function}, per process
 
 def mode() -> str:
     """The compilation mode from ``$SLINGBACK_COMPILE`` (``auto``, ``wait`` or ``off``)."""
-    value = os.environ.get("SLINGBACK_COMPILE", "auto").strip().lower() or "auto"
+    value = os.environ.get("SLINGBACK_COMPILE", "off").strip().lower() or "off"
     if value in ("0", "no", "false", "none"):
         value = "off"
     if value not in MODES:
