@@ -38,14 +38,13 @@ When: ``$SLINGBACK_COMPILE``
   also sets it (``tests/conftest.py``).
 * ``wait``: compile now if needed and use it (benchmarks, batch sweeps that will amortise it).
 
-May import the standard library, numpy and CasADi only (no other module of the package).
+May import the standard library, numpy, CasADi and the package's toolchain module only.
 """
 
 from __future__ import annotations
 
 import hashlib
 import os
-import shutil
 import subprocess
 import sys
 import tempfile
@@ -54,6 +53,8 @@ from pathlib import Path
 
 import casadi as ca
 import numpy as np
+
+from .toolchain import cache_root, compiler  # noqa: F401  (compiler: also this module's public name)
 
 #: Flags of the shared library.  -O1: see the README's figures for compile time and speed-up;
 #: ``$SLINGBACK_CFLAGS`` replaces the optimisation flag (``-O0`` compiles ~10x faster: tests).
@@ -80,25 +81,13 @@ def mode() -> str:
 
 def cache_dir() -> Path:
     """Folder of the compiled libraries (created on first use)."""
-    root = os.environ.get("SLINGBACK_CACHE_DIR")
-    if not root:
-        base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
-        root = os.path.join(base, "slingback")
-    return Path(root) / f"nlp-casadi{ca.__version__}"
+    return cache_root() / f"nlp-casadi{ca.__version__}"
 
 
 def cflags() -> tuple:
     """Compiler flags: ``CFLAGS`` with its optimisation flag replaced by ``$SLINGBACK_CFLAGS`` if set."""
     extra = os.environ.get("SLINGBACK_CFLAGS", "").split()
     return tuple(extra or CFLAGS[:1]) + CFLAGS[1:]
-
-
-def compiler() -> str | None:
-    """The C compiler: ``$SLINGBACK_CC``, else ``gcc``, else ``cc`` on the PATH; None if none."""
-    for name in (os.environ.get("SLINGBACK_CC"), "gcc", "cc"):
-        if name and shutil.which(name):
-            return shutil.which(name)
-    return None
 
 
 def _parametric(tr) -> dict:

@@ -25,7 +25,6 @@ import ctypes
 import hashlib
 import math
 import os
-import shutil
 import subprocess
 import sys
 import tempfile
@@ -38,6 +37,7 @@ from scipy.integrate._ivp.ivp import find_active_events, handle_events, prepare_
 from scipy.integrate._ivp.rk import Dop853DenseOutput
 
 from .constants import J2_EARTH, R_EARTH
+from .toolchain import cache_root, compiler
 
 SOURCE = Path(__file__).resolve().parent / "data" / "coast.c"
 CFLAGS = ("-O2", "-fPIC", "-shared")
@@ -51,19 +51,8 @@ _DP = ctypes.POINTER(ctypes.c_double)
 _IP = ctypes.POINTER(ctypes.c_int)
 
 
-def _compiler():
-    for name in (os.environ.get("SLINGBACK_CC"), "gcc", "cc"):
-        if name and shutil.which(name):
-            return shutil.which(name)
-    return None
-
-
 def _cache_dir() -> Path:
-    root = os.environ.get("SLINGBACK_CACHE_DIR")
-    if not root:
-        base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
-        root = os.path.join(base, "slingback")
-    return Path(root) / "propagator"
+    return cache_root() / "propagator"
 
 
 def library():
@@ -71,7 +60,7 @@ def library():
     if _STATE["tried"]:
         return _STATE["lib"]
     _STATE["tried"] = True
-    cc = _compiler()
+    cc = compiler()
     if cc is None:
         _STATE["reason"] = "no C compiler found (gcc, cc, $SLINGBACK_CC)"
         return None
