@@ -79,6 +79,17 @@ static double rms(const double *v, const double *scale)
     return sqrt(s / 6.0);
 }
 
+/* The state at stage s of a step of size h from y: y + h sum_j a_sj K_j (row s of A, NX wide). */
+static void stage_state(const double *y, double K[][6], const double *A, int s, double h, double *yi)
+{
+    for (int i = 0; i < 6; i++) {
+        double acc = 0.0;
+        for (int j = 0; j < s; j++)
+            acc += K[j][i] * A[NX * s + j];
+        yi[i] = y[i] + acc * h;
+    }
+}
+
 /* Right-hand side at one point (for tests and the benchmark); 0, or 1 outside the epochs. */
 int coast_rhs(const double *p, const int *ip, double t, const double *y, double *f)
 {
@@ -136,12 +147,7 @@ int coast_dop853(const double *p, const int *ip, const double *A, const double *
             h_abs = fabs(h);
             memcpy(K[0], f, sizeof f);
             for (int s = 1; s < NS; s++) {
-                for (int i = 0; i < 6; i++) {
-                    double acc = 0.0;
-                    for (int j = 0; j < s; j++)
-                        acc += K[j][i] * A[NX * s + j];
-                    yi[i] = y[i] + acc * h;
-                }
+                stage_state(y, K, A, s, h, yi);
                 if (rhs(p, ip, t + C[s] * h, yi, K[s])) { *t_fail = t + C[s] * h; status = -2; goto done; }
                 nfev++;
             }
@@ -176,12 +182,7 @@ int coast_dop853(const double *p, const int *ip, const double *A, const double *
         }
         /* dense output: three more stages, then scipy's seven coefficient rows */
         for (int s = NS + 1; s < NX; s++) {
-            for (int i = 0; i < 6; i++) {
-                double acc = 0.0;
-                for (int j = 0; j < s; j++)
-                    acc += K[j][i] * A[NX * s + j];
-                yi[i] = y[i] + acc * h;
-            }
+            stage_state(y, K, A, s, h, yi);
             if (rhs(p, ip, t + C[s] * h, yi, K[s])) { *t_fail = t + C[s] * h; status = -2; goto done; }
             nfev++;
         }
