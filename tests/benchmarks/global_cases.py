@@ -172,13 +172,21 @@ def path_summary(model, problem, t, y, rtol=VERIFY_RTOL, atol=VERIFY_ATOL) -> Su
     leg1 = propagate(model, t, y, t_end, events=("perilune", "impact_earth", "impact_moon"),
                      terminal=("perilune",), rtol=rtol, atol=atol, perilune_within=REF_LUNAR_SPHERE_KM)
     peri = leg1.first("perilune")
-    nan = float("nan")
     if peri is None:
-        stop = leg1.y[:, -1]
-        kind = leg1.status.replace("stopped at ", "") if leg1.status != "completed" else "none"
-        return Summary(nan, nan, kind, float(leg1.t[-1]), nan, osculating_perigee_alt(model, stop), stop)
-    alt = float(np.linalg.norm(peri.y[:3] - model.moon_position(peri.t)) - model.moon.radius)
-    return _arrival(model, problem, peri.t, peri.y, alt, t_end, rtol, atol)
+        return _no_perilune(model, leg1)
+    return _arrival(model, problem, peri.t, peri.y, _perilune_alt(model, peri), t_end, rtol, atol)
+
+
+def _no_perilune(model, arc) -> Summary:
+    """Where a path that never reached its perilune ended (impact, or the latest epoch)."""
+    nan = float("nan")
+    stop = arc.y[:, -1]
+    kind = arc.status.replace("stopped at ", "") if arc.status != "completed" else "none"
+    return Summary(nan, nan, kind, float(arc.t[-1]), nan, osculating_perigee_alt(model, stop), stop)
+
+
+def _perilune_alt(model, peri) -> float:
+    return float(np.linalg.norm(peri.y[:3] - model.moon_position(peri.t)) - model.moon.radius)
 
 
 NEAR_EARTH_KM = 150000.0  # a perigee farther than this is a dip of the distance near the Moon
@@ -224,12 +232,10 @@ def full_path_summary(model, problem, burns, rtol=VERIFY_RTOL, atol=VERIFY_ATOL)
     # propagate_burns stops at the first terminal event; the burns after it are then applied below
     last = arcs[-1]
     peri = next((e for a in arcs for e in a.events if e.name == "perilune"), None)
-    nan = float("nan")
     if peri is None:
-        stop = last.y[:, -1]
-        kind = last.status.replace("stopped at ", "") if last.status != "completed" else "none"
-        return Summary(nan, nan, kind, float(last.t[-1]), nan, osculating_perigee_alt(model, stop), stop)
-    alt = float(np.linalg.norm(peri.y[:3] - model.moon_position(peri.t)) - model.moon.radius)
+        return _no_perilune(model, last)
+    nan = float("nan")
+    alt = _perilune_alt(model, peri)
     later = [(e, d) for e, d in burns if e > peri.t]
     if not later:
         return _arrival(model, problem, peri.t, peri.y, alt, t_end, rtol, atol)
