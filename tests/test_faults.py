@@ -18,6 +18,7 @@ from pathlib import Path
 
 import pytest
 
+from child_signals import ctrl_c_as_from_a_terminal
 from export_fixture import make_case
 from optimizer.export import plan_json
 from optimizer.problem_file import dumps_toml, problem_to_dict
@@ -203,20 +204,10 @@ except KeyboardInterrupt:
 """
 
 
-def _ctrl_c_as_from_a_terminal():
-    """Child processes of these tests get SIGINT as a shell in a terminal would give it: default
-    disposition, not blocked.  A test runner started in the background by a non-interactive shell
-    (as CI harnesses may be) has SIGINT ignored, and children inherit that: Python then keeps it
-    ignored (rightly: Ctrl-C cannot reach such a process) and the tests below could not see the
-    interrupt at all."""
-    signal.signal(signal.SIGINT, signal.SIG_DFL)
-    signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
-
-
 def _ipopt_loop(guard: str, count: int) -> str:
     p = subprocess.run([sys.executable, "-c", IPOPT_LOOP % (guard, count)], cwd=ROOT, capture_output=True,
                        text=True, env={**os.environ, "PYTHONPATH": str(ROOT)}, timeout=300,
-                       preexec_fn=_ctrl_c_as_from_a_terminal)
+                       preexec_fn=ctrl_c_as_from_a_terminal)
     assert p.returncode == 0, p.stderr[-2000:]
     return p.stdout.strip().splitlines()[-1]
 
@@ -239,7 +230,7 @@ def test_ctrl_c_during_solve_exits_130_with_one_line_and_writes_nothing(tmp_path
     p = subprocess.Popen([sys.executable, "-m", "optimizer.cli", "solve", str(ROOT / "problems/demo-abort.toml"),
                           "--out", str(out)], cwd=tmp_path, env={**os.environ, "PYTHONPATH": str(ROOT)},
                          stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                         preexec_fn=_ctrl_c_as_from_a_terminal)
+                         preexec_fn=ctrl_c_as_from_a_terminal)
     seen = []
     for line in p.stderr:  # wait until the solver itself is at work
         seen.append(line)
@@ -272,7 +263,7 @@ def test_early_ctrl_c_exits_130_with_one_line(tmp_path, mark):
                           str(ROOT / "problems/demo-abort.toml"), "--out", str(out), "--quiet"],
                          cwd=tmp_path, env={**os.environ, "PYTHONPATH": str(ROOT)},
                          stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                         preexec_fn=_ctrl_c_as_from_a_terminal)
+                         preexec_fn=ctrl_c_as_from_a_terminal)
     seen = []
     for line in p.stderr:
         seen.append(line)

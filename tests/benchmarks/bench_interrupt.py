@@ -16,12 +16,9 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT / "tests"))
 
-
-def _terminal_sigint():
-    """SIGINT in the child as from a terminal (a runner started in the background has it ignored)."""
-    signal.signal(signal.SIGINT, signal.SIG_DFL)
-    signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
+from child_signals import ctrl_c_as_from_a_terminal  # noqa: E402
 
 
 def once(delay: float) -> None:
@@ -30,7 +27,7 @@ def once(delay: float) -> None:
         p = subprocess.Popen([sys.executable, "-m", "optimizer.cli", "solve", str(ROOT / "problems/demo-abort.toml"),
                               "--out", str(out)], cwd=tmp, env={**os.environ, "PYTHONPATH": str(ROOT)},
                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                             preexec_fn=_terminal_sigint)
+                             preexec_fn=ctrl_c_as_from_a_terminal)
         time.sleep(delay)
         if p.poll() is not None:
             print(f"delay {delay:5.1f} s: the solve had already ended (exit {p.returncode})")
