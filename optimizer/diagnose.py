@@ -8,11 +8,12 @@ arrival window or a duration that ends before the lunar pass can never be met, s
 is counted only after the perilune.  Burns move the lunar pass a little, so this is a diagnosis
 of the burn-free coast, not a proof; it is offered only when the solver has already failed.
 
-May import problem, timescales, events, the model factory and the propagator; never the solve wing or the NLP.
+May import constants, problem, timescales, events, the model factory and the propagator; never the solve wing or the NLP.
 """
 
 from __future__ import annotations
 
+from .constants import SECONDS_PER_DAY
 from .events import lunar_encounter
 from .problem import StateStart
 from .propagate import propagate
@@ -48,7 +49,7 @@ def explain_failure(problem, model=None) -> str | None:
         return None
     end, key = found
     t0 = problem.start.epoch
-    horizon = max(problem.latest_epoch(), end) + FOLLOW_DAYS * 86400.0
+    horizon = max(problem.latest_epoch(), end) + FOLLOW_DAYS * SECONDS_PER_DAY
     try:
         if model is None:
             from .models.factory import build_model
@@ -76,5 +77,5 @@ def _arrival_end(problem) -> tuple[float, str] | None:
     if ret.epoch_window is not None:
         ends.append((ret.epoch_window[1], "epoch_window"))
     if ret.max_duration_days is not None:
-        ends.append((t0 + ret.max_duration_days * 86400.0, f"max_duration_days ({ret.max_duration_days:g} d)"))
+        ends.append((t0 + ret.max_duration_days * SECONDS_PER_DAY, f"max_duration_days ({ret.max_duration_days:g} d)"))
     return min(ends) if ends else None
