@@ -34,8 +34,9 @@ model's ephemeris: Chebyshev window and coefficients, or the circular Moon's orb
 expressions as a parameter vector ``p`` (``self.p``, value ``self.p_value``), not as constants:
 two problems of the same structure (phases, mesh, burn kinds, model kind and series degree) have
 the same parametric functions, so one compiled library serves both (``optimizer/compiled.py``).
-``self.nlp`` is the parameter-free NLP (``p`` replaced by its value) that nlpsol and the tests
-use; ``self.nlp_parametric`` keeps ``p``.
+``self.nlp`` is the parameter-free NLP that nlpsol and the tests use: its segment functions have
+the values written in before CasADi builds them (constants folded, the padded series' zero terms
+gone); ``self.nlp_parametric`` keeps ``p`` (built on first use, for the compiled library).
 
 May import constants, the models' base, tableau, numpy and CasADi; never the propagator or verifier (they referee it).
 """
@@ -184,19 +185,37 @@ class Transcription:
         self._add_spacing(v)
         self._set_objective(v)
         x, self._g_w = ca.vertcat(*v.x), ca.vertcat(*v.g)
-        ends = [self._mapped(self.steps[k])(nodes[:, :-1], ca.repmat(slen / self.segments, 1, self.segments),
-                                            self.p)
-                for k, nodes, slen, _ in self._shots]
-        g = ca.substitute([self._g_w], [w for *_, w in self._shots], ends)[0]
-        self.nlp_parametric = {"x": x, "p": self.p, "f": self.f, "g": g}
-        self.nlp = {"x": x, "f": self.f, "g": self.fix_parameters(g)}
+        self._x = x
+        self.nlp = {"x": x, "f": self.f, "g": self.fix_parameters(self._g_with_segments(parametric=False))}
         self.lbx, self.ubx = np.concatenate(v.lbx), np.concatenate(v.ubx)
         self.x0 = np.concatenate(v.x0)
         self.lbg, self.ubg = np.concatenate(v.lbg), np.concatenate(v.ubg)
 
-    def fix_parameters(self, expr):
-        """``expr`` (MX) with the parameter vector replaced by this problem's values."""
-        return ca.substitute([expr], [self.p], [ca.MX(ca.DM(self.p_value))])[0]
+    def _g_with_segments(self, parametric: bool):
+        """The constraints with every coast's segment ends written in (of the parametric or the
+        folded segment functions, :meth:`segment_function`)."""
+        ends = [self._mapped(self.steps[k], parametric)(nodes[:, :-1],
+                                                        ca.repmat(slen / self.segments, 1, self.segments), self.p)
+                for k, nodes, slen, _ in self._shots]
+        return ca.substitute([self._g_w], [w for *_, w in self._shots], ends)[0]
+
+    @property
+    def nlp_parametric(self) -> dict:
+        """The NLP with the parameter vector ``p`` kept as an input (for a compiled library shared
+        by every epoch of one structure); built on first use."""
+        key = "nlp parametric"
+        if key not in self._segments:
+            self._segments[key] = {"x": self._x, "p": self.p, "f": self.f,
+                                   "g": self._g_with_segments(parametric=True)}
+        return self._segments[key]
+
+    def fix_parameters(self, *exprs):
+        """``exprs`` (MX) with the parameter vector replaced by this problem's values: one
+        expression, or a list of them substituted together, so that the subexpressions they share
+        stay shared (two separate substitutions copy the graph twice: measured, the constraint
+        Jacobian evaluated the segments' Jacobians twice, 15.5 ms a call instead of 7.6 ms)."""
+        out = ca.substitute(list(exprs), [self.p], [ca.MX(ca.DM(self.p_value))])
+        return out[0] if len(exprs) == 1 else out
 
     # -- dynamics ------------------------------------------------------------------------------
     def _body_functions(self):
@@ -222,41 +241,58 @@ class Transcription:
         omega2 = (model.gm_earth * inv_cube_casadi(r_km) + model.gm_moon * inv_cube_casadi(dm)) * sc.tu**2
         dtds = 1.0 / ca.sqrt(omega2)
         self.dtds_fn = ca.Function("dtds", [z, par], [dtds])
-        rhs = ca.Function("rhs", [z, par], [ca.cse(ca.vertcat(vel * dtds, acc * dtds, dtds))])
+        rhs = ca.cse(ca.vertcat(vel * dtds, acc * dtds, dtds))
+        # two flavours of the right-hand side: ``p`` kept (a compiled library serves every epoch),
+        # or this problem's numbers written in, which lets CasADi fold constants and drop the zero
+        # coefficients of the padded series (``ephemeris.PARAMETER_DEGREE_STEP``).  Measured on
+        # demo-trade cells (interpreted): 22 ms per IPOPT iteration with ``p`` kept, 14 ms before
+        # the parameters were introduced; the folded flavour is what nlpsol evaluates.
+        folded = ca.cse(ca.substitute(rhs, par, ca.DM(self.p_value)))
+        self._rhs = {True: ca.Function("rhs", [z, par], [rhs]), False: ca.Function("rhs", [z, par], [folded])}
 
-        h = ca.SX.sym("h")
-        k = []
-        for i in range(12):
-            zi = z
-            for j in range(i):
-                if _RK_A[i, j] != 0.0:
-                    zi = zi + h * _RK_A[i, j] * k[j]
-            k.append(rhs(zi, par))
-        z_next = z + h * sum(_RK_B[i] * k[i] for i in range(12) if _RK_B[i] != 0.0)
-        self.step_fn = ca.Function("rk8_step", [z, h, par], [z_next])
+    def _step_function(self, parametric: bool) -> ca.Function:
+        """One RK8 step ``(z, h, p) -> z`` of the parametric or folded right-hand side."""
+        key = ("step", parametric)
+        if key not in self._segments:
+            z, h, par = ca.SX.sym("z", 7), ca.SX.sym("h"), ca.SX.sym("p", self.p_value.size)
+            rhs = self._rhs[parametric]
+            k = []
+            for i in range(12):
+                zi = z
+                for j in range(i):
+                    if _RK_A[i, j] != 0.0:
+                        zi = zi + h * _RK_A[i, j] * k[j]
+                k.append(rhs(zi, par))
+            z_next = z + h * sum(_RK_B[i] * k[i] for i in range(12) if _RK_B[i] != 0.0)
+            self._segments[key] = ca.Function("rk8_step", [z, h, par], [z_next])
+        return self._segments[key]
 
-    def segment_function(self, steps: int) -> ca.Function:
+    def segment_function(self, steps: int, parametric: bool = False) -> ca.Function:
         """``M`` RK8 steps of length ``h / M``, expanded to SX; one Function per step count, shared
-        by the coasts (CasADi then generates its derivatives once: measured ~2x faster build)."""
-        cached = self._segments.get(steps)
+        by the coasts (CasADi then generates its derivatives once: measured ~2x faster build).
+        ``parametric``: the model's numbers read from the input ``p`` (else written in; ``p`` is
+        then an input the function ignores)."""
+        key = ("segment", steps, parametric)
+        cached = self._segments.get(key)
         if cached is not None:
             return cached
         z = ca.SX.sym("z", 7)
         h = ca.SX.sym("h")
         par = ca.SX.sym("p", self.p_value.size)
+        step = self._step_function(parametric)
         zz = z
         for _ in range(steps):
-            zz = self.step_fn(zz, h / steps, par)
+            zz = step(zz, h / steps, par)
         fn = ca.Function(f"segment{steps}", [z, h, par],
                          [ca.cse(ca.Function("s", [z, h, par], [zz]).expand()(z, h, par))])
-        self._segments[steps] = fn
+        self._segments[key] = fn
         return fn
 
-    def _mapped(self, steps: int) -> ca.Function:
+    def _mapped(self, steps: int, parametric: bool = False) -> ca.Function:
         """The segment function of ``steps`` mapped over a coast's segments (one per step count)."""
-        key = ("map", steps)
+        key = ("map", steps, parametric)
         if key not in self._segments:
-            self._segments[key] = self.segment_function(steps).map(self.segments, MAP_MODE, self.threads)
+            self._segments[key] = self.segment_function(steps, parametric).map(self.segments, MAP_MODE, self.threads)
         return self._segments[key]
 
     # -- building blocks -----------------------------------------------------------------------
@@ -444,12 +480,12 @@ class Transcription:
         self.total_dv_mps = total
 
     # -- exact derivatives, assembled per segment ----------------------------------------------
-    def _segment_derivatives(self, steps: int):
+    def _segment_derivatives(self, steps: int, parametric: bool = False):
         """Mapped SX functions of one coast's segments: (ends, Jacobians 7 x 8) and the upper
         triangle of the Hessian of ``mu' segment(z, h)`` over ``(z, h)``."""
-        key = ("derivatives", steps)
+        key = ("derivatives", steps, parametric)
         if key not in self._segments:
-            seg = self.segment_function(steps)
+            seg = self.segment_function(steps, parametric)
             z, h, mu = ca.SX.sym("z", 7), ca.SX.sym("h"), ca.SX.sym("mu", 7)
             par = ca.SX.sym("p", self.p_value.size)
             zh = ca.vertcat(z, h)
@@ -511,14 +547,14 @@ class Transcription:
         key = ("nlp derivatives", hessian, parametric)
         if key in self._segments:
             return self._segments[key]
-        x, g_w, n = self.nlp["x"], self._g_w, self.segments
+        x, g_w, n = self._x, self._g_w, self.segments
         ws = [w for *_, w in self._shots]
         nx, ng = x.numel(), g_w.numel()
         jparts = [self._part(ca.jacobian(g_w, x))]
         ends, hparts = [], []
         lam_f, lam_g = ca.MX.sym("lam_f"), ca.MX.sym("lam_g", ng)
         for k, nodes, slen, _ in self._shots:
-            jac_map, hess_map = self._segment_derivatives(self.steps[k])
+            jac_map, hess_map = self._segment_derivatives(self.steps[k], parametric)
             hs = ca.repmat(slen / n, 1, n)
             end, jmat = jac_map(nodes[:, :-1], hs, self.p)
             ends.append(end)
@@ -543,12 +579,17 @@ class Transcription:
                 hparts.append((hmat.nz[:], rows, cols, wts))
         g = ca.substitute([g_w], ws, ends)[0]
         jac = self._assemble((ng, nx), jparts)
-        p, fix = (self.p, lambda e: e) if parametric else (ca.MX.sym("p", 0, 1), self.fix_parameters)
-        out = {"jac_g": ca.Function("nlp_jac_g", [x, p], [fix(g), fix(jac)], ["x", "p"], ["g", "jac_g_x"])}
+        p = self.p if parametric else ca.MX.sym("p", 0, 1)
+
+        def fix(*exprs):  # a list, sharing the subexpressions of its members
+            return list(exprs) if parametric else self.fix_parameters(*exprs) if len(exprs) > 1 \
+                else [self.fix_parameters(exprs[0])]
+
+        out = {"jac_g": ca.Function("nlp_jac_g", [x, p], fix(g, jac), ["x", "p"], ["g", "jac_g_x"])}
         if hessian:
             lag = lam_f * self.f + ca.dot(lam_g, g_w)
             hess = self._assemble((nx, nx), [self._part(ca.triu(ca.hessian(lag, x)[0]))] + hparts, triu=True)
-            out["hess_lag"] = ca.Function("nlp_hess_l", [x, p, lam_f, lam_g], [fix(hess)],
+            out["hess_lag"] = ca.Function("nlp_hess_l", [x, p, lam_f, lam_g], fix(hess),
                                           ["x", "p", "lam_f", "lam_g"], ["triu_hess_gamma_x_x"])
         self._segments[key] = out
         return out

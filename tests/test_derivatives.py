@@ -97,3 +97,21 @@ def test_assembled_derivatives_equal_finite_differences(case):
         np.testing.assert_allclose(jac[:, col], fd, rtol=0, atol=1e-6 * max(1.0, np.max(np.abs(jac))))
         fd = (np.asarray(grad_l(x + e)).ravel() - np.asarray(grad_l(x - e)).ravel()) / (2 * h)
         np.testing.assert_allclose(hess[:, col], fd, rtol=0, atol=1e-5 * max(1.0, np.max(np.abs(hess))))
+
+
+def _calls(fn: ca.Function) -> list[str]:
+    """Names of the functions an MX function calls, one entry per call in its graph."""
+    return [fn.instruction_MX(k).which_function().name() for k in range(fn.n_instructions())
+            if fn.instruction_id(k) == ca.OP_CALL]
+
+
+def test_each_coasts_segment_jacobians_are_evaluated_once(case):
+    """The constraints and their Jacobian share the segments' ends and Jacobians: one call of the
+    mapped segment-Jacobian function per coast.  (The parameter values were once written into
+    the two outputs separately, which copied the graph: every Jacobian evaluation then integrated
+    every segment twice, the IPOPT iterations of a trade cell 2x slower.)"""
+    tr, _, _ = case
+    for parametric in (False, True):
+        calls = [n for n in _calls(tr.derivative_functions(hessian=False, parametric=parametric)["jac_g"])
+                 if n.endswith("_jac")]
+        assert len(calls) == len(tr.phases), (parametric, calls)
