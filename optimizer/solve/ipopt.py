@@ -11,6 +11,7 @@ May import: transcription, compiled, and the wing's ``base``.  Never ``guess``, 
 
 from __future__ import annotations
 
+import math
 import threading
 import time
 
@@ -144,7 +145,11 @@ def solve_nlp(tr: Transcription, x0, lam=None, extra=None):
     wall = time.perf_counter() - t0
     st = solver.stats()
     timing = {k[7:]: round(v, 4) for k, v in st.items() if k.startswith("t_wall_nlp_")}
-    return sol, {"timing_s": timing, "build_s": round(t_build, 4),
+
+    # IPOPT's primal infeasibility (largest violation of the scaled constraints) at the last
+    # iterate: a stalled attempt that ended near-feasible is worth continuing, one far from it not
+    trace = [float(v) for v in st.get("iterations", {}).get("inf_pr", []) if math.isfinite(v)]
+    return sol, {"primal_infeasibility": trace[-1] if trace else None, "timing_s": timing, "build_s": round(t_build, 4),
                  "evaluation": getattr(solver, "slingback_evaluation", None), "status": st["return_status"],
                  "success": bool(st["success"]), "iterations": int(st["iter_count"]),
                  "wall_s": wall, "objective": float(sol["f"])}

@@ -40,7 +40,7 @@ from .store import StoreKind
 
 __all__ = ["cell_problem", "reference_problem", "label", "solve_task", "record", "warm_of", "warm_stub",
            "tree", "children_of", "seed_cell", "far_cap", "retry_sources", "final", "CELL_IPOPT_OPTIONS",
-           "FAR_CAP_SHARE", "FALLBACK_CAP_SHARE", "STORE_KIND"]
+           "FAR_CAP_SHARE", "FALLBACK_CAP_SHARE", "FALLBACK_MAX_INFEASIBILITY", "STORE_KIND"]
 
 #: IPOPT options of a cell (over the solver's own): optimality tolerance 1e-7 instead of 1e-9; the
 #: constraint tolerances, and so the verification, are unchanged.  The reference and
@@ -56,6 +56,15 @@ FAR_CAP_SHARE = 0.25
 #: count is not a stable property (it moved with a rounding-level rewrite of the right-hand side),
 #: so the exact attempt gets the whole cap.
 FALLBACK_CAP_SHARE = 1.0
+#: The exact-Hessian attempt is made only when the stalled limited-memory one ended at most this
+#: far from feasible (IPOPT's primal infeasibility of its last iterate).  Measured by
+#: ``tests/benchmarks/bench_cell_fallback.py`` (cells of the test grid of tests/test_trade.py and of
+#: the demo-trade grid, each warm-started from its verified neighbour): a feasible cell whose limited-memory attempt stalled
+#: ended at 8.4e-7 and the exact attempt then verified it; cells with no solution (arrival too
+#: early for the perilune range) ended at 0.15 to 5.0, and 100 more exact iterations never
+#: verified one.  Below this, the exact attempt runs; above, the cell fails fast (a retry from
+#: another verified neighbour may still solve it).
+FALLBACK_MAX_INFEASIBILITY = 1e-3
 
 #: The resume folder of a sweep: ``sweep.json`` names the sweep, ``cells/<label>.json`` one cell
 #: (and ``cells/reference.json`` the reference solve).
@@ -172,7 +181,8 @@ def _solve_cell(problem, warm, model, max_iter, burn_index, cell, fallback):
         # cells share one NLP structure (only bounds change): the solver's own per-thread cache
         # reuses one built IPOPT solver for them, given the same (interned) model object
         plan = solve(problem, warm=warm_stub(warm) if warm else None, model=model, ipopt_options=options)
-        if cell and fallback and not plan.verified and "Maximum_Iterations" in plan.reason and plan.warm.get("x"):
+        if cell and fallback and not plan.verified and "Maximum_Iterations" in plan.reason and plan.warm.get("x") \
+                and _near_feasible(plan):
             # the limited-memory Hessian can stall on a cell far from its neighbour: the exact
             # Hessian goes on from where it stopped (see FALLBACK_CAP_SHARE)
             attempts = plan.solver.get("attempts", [])
@@ -189,6 +199,14 @@ def _solve_cell(problem, warm, model, max_iter, burn_index, cell, fallback):
     rec = record(plan, problem, burn_index, time.perf_counter() - t0, time.process_time() - c0)
     rec["max_iter"] = int(max_iter)
     return rec, (warm_of(plan) if plan.verified else None)
+
+
+def _near_feasible(plan) -> bool:
+    """Whether the last IPOPT attempt of ``plan`` ended within FALLBACK_MAX_INFEASIBILITY of
+    feasible (an attempt without that record counts as near: the fallback is then tried)."""
+    attempts = plan.solver.get("attempts") or [{}]
+    inf_pr = attempts[-1].get("primal_infeasibility")
+    return inf_pr is None or inf_pr <= FALLBACK_MAX_INFEASIBILITY
 
 
 _MODELS = {}  # per worker process: one model object per distinct model (fingerprint -> model)

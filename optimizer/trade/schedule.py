@@ -36,7 +36,8 @@ from ..executors import Processes, make_executor
 from ..plan import Plan
 from ..problem import Problem
 from ..timescales import format_epoch
-from .cells import (CELL_IPOPT_OPTIONS, FAR_CAP_SHARE, STORE_KIND, cell_problem, children_of, far_cap, final, label,
+from .cells import (CELL_IPOPT_OPTIONS, FALLBACK_MAX_INFEASIBILITY, FAR_CAP_SHARE, STORE_KIND, cell_problem,
+                    children_of, far_cap, final, label,
                     record, reference_problem, retry_sources, seed_cell, solve_task, tree, warm_of)
 from .spec import DEFAULT_MAX_ITER, SweepSpecError, grid_of, parse_sweep_spec
 from .store import ResumeStore
@@ -195,6 +196,7 @@ def sweep(problem: Problem, burn_epochs, arrival_epochs=None, *, return_duration
                   "columns": list(cols), "arrival_tolerance_s": float(arrival_tolerance_s),
                   "burn_index": burn_index, "max_iter": int(max_iter), "retry": bool(retry),
                   "cell_ipopt_options": CELL_IPOPT_OPTIONS, "far_cap_share": FAR_CAP_SHARE,
+                  "fallback_max_infeasibility": FALLBACK_MAX_INFEASIBILITY,
                   "model": model.describe()}
     store = ResumeStore(resume_dir, definition, STORE_KIND, SweepSpecError)
     run = _Run(problems, model, int(max_iter), burn_index, store, progress or (lambda p: None), t_start)
