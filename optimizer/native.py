@@ -11,7 +11,7 @@ with the propagator's event functions unchanged.
 It is part of the independent check: nothing here is generated, and nothing imports CasADi or the
 transcription.  It serves the Earth-centred models (:class:`~optimizer.models.EarthCentred` on a
 :class:`~optimizer.ephemeris.ChebyshevEphemeris` fit or a
-:class:`~optimizer.ephemeris.CircularMoon`); :func:`supports` says when, and the propagator falls
+:class:`~optimizer.circular_moon.CircularMoon`); :func:`supports` says when, and the propagator falls
 back to scipy otherwise, or when no compiler is found (``$SLINGBACK_CC``, ``gcc``, ``cc``).
 
 The library is cached beside the NLP libraries (``$SLINGBACK_CACHE_DIR``, else
@@ -102,7 +102,8 @@ def reason() -> str | None:
 def model_numbers(model):
     """``(p, ip)`` arrays describing ``model`` to the C right-hand side, or None if it cannot
     (not an Earth-centred model with its own acceleration, or an ephemeris of another kind)."""
-    from .ephemeris import ChebyshevEphemeris, CircularMoon
+    from .circular_moon import CircularMoon
+    from .ephemeris import ChebyshevEphemeris
     from .models.earth_centred import EarthCentred
 
     if not isinstance(model, EarthCentred) or type(model).acceleration is not EarthCentred.acceleration:

@@ -1,4 +1,4 @@
-"""Checks of optimizer.ephemeris: DE421 reading, the Chebyshev fit, the circular Moon.
+"""Checks of optimizer.ephemeris (DE421 reading, the Chebyshev fit) and optimizer.circular_moon.
 
 Epochs are TDB seconds past J2000; positions km, velocities km/s.
 """
@@ -10,8 +10,9 @@ import numpy as np
 import pytest
 from numpy.polynomial import chebyshev
 
+from optimizer.circular_moon import CircularMoon
 from optimizer.constants import EARTH_MOON_DISTANCE, JD_J2000, SECONDS_PER_DAY, SIDEREAL_MONTH
-from optimizer.ephemeris import DE421, ChebyshevEphemeris, CircularMoon
+from optimizer.ephemeris import DE421, ChebyshevEphemeris
 
 DAY = SECONDS_PER_DAY
 # Astronomical unit, 149,597,870.7 km exactly (IAU 2012 Resolution B2), from memory.

@@ -14,9 +14,10 @@ import casadi as ca
 import numpy as np
 import pytest
 
+from optimizer.circular_moon import CircularMoon
 from optimizer.constants import (CR3BP_LENGTH, GM_EARTH, GM_MOON, GM_SUN, J2_EARTH, R_EARTH,
                                  SECONDS_PER_DAY)
-from optimizer.ephemeris import DE421, ChebyshevEphemeris, CircularMoon
+from optimizer.ephemeris import DE421, ChebyshevEphemeris
 from optimizer.models import CR3BP, EarthCentred, TwoBody
 from optimizer.models.base import third_body
 
@@ -202,7 +203,7 @@ def test_earth_centred_circular_moon_is_the_cr3bp():
     # circular Moon whose rate obeys n^2 a^3 = GM_E + GM_M: propagating the same state in both
     # frames must give the same path (this is what the "cr3bp" kind of the solver uses).
     from optimizer.constants import GM_EARTH, GM_MOON
-    from optimizer.ephemeris import CircularMoon
+    from optimizer.circular_moon import CircularMoon
     from optimizer.models import EarthCentred
     from optimizer.propagate import propagate
 

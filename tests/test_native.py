@@ -13,8 +13,9 @@ import numpy as np
 import pytest
 
 from optimizer import native
+from optimizer.circular_moon import CircularMoon
 from optimizer.constants import R_EARTH, SECONDS_PER_DAY
-from optimizer.ephemeris import DE421, ChebyshevEphemeris, CircularMoon
+from optimizer.ephemeris import DE421, ChebyshevEphemeris
 from optimizer.models import EarthCentred, TwoBody
 from optimizer.propagate import propagate
 

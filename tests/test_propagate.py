@@ -16,9 +16,10 @@ import sys
 import numpy as np
 import pytest
 
+from optimizer.circular_moon import CircularMoon
 from optimizer.constants import (CR3BP_LENGTH, ENTRY_INTERFACE_ALT, GM_EARTH, R_EARTH, R_MOON,
                                  SECONDS_PER_DAY)
-from optimizer.ephemeris import DE421, ChebyshevEphemeris, CircularMoon
+from optimizer.ephemeris import DE421, ChebyshevEphemeris
 from optimizer.models import CR3BP, EarthCentred, TwoBody
 from optimizer.propagate import propagate, propagate_burns
 
@@ -314,7 +315,8 @@ _INDEPENDENCE_SCRIPT = """
 import sys
 import numpy as np
 import optimizer.propagate, optimizer.models, optimizer.verify
-from optimizer.ephemeris import DE421, ChebyshevEphemeris, CircularMoon
+from optimizer.circular_moon import CircularMoon
+from optimizer.ephemeris import DE421, ChebyshevEphemeris
 from optimizer.models import CR3BP, EarthCentred, TwoBody
 from optimizer.propagate import propagate, propagate_burns
 t0 = 9000 * 86400.0

@@ -3,7 +3,7 @@
 One class serves two named configurations:
 
 * ``"earth-moon"``: Earth and a Moon on a prescribed orbit (usually
-  :class:`optimizer.ephemeris.CircularMoon`);
+  :class:`optimizer.circular_moon.CircularMoon`);
 * ``"ephemeris"``: Earth, Moon and Sun at DE421 positions (a
   :class:`optimizer.ephemeris.ChebyshevEphemeris` fit), optional Earth J2.
 

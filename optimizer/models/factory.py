@@ -1,6 +1,6 @@
 """Build a force model from a problem's :class:`~optimizer.problem.ModelSpec`.
 
-May import constants, ephemeris and the models' own modules.
+May import constants, ephemeris, circular_moon and the models' own modules.
 """
 
 from __future__ import annotations
@@ -27,7 +27,8 @@ def build_model(spec, t_start: float, t_end: float):
     DE421's Moon at ``t_start``.  All models built here are Earth-centred inertial (the rotating,
     non-dimensional :class:`~optimizer.models.CR3BP` is for analysis in that frame).
     """
-    from ..ephemeris import DE421, ChebyshevEphemeris, CircularMoon
+    from ..circular_moon import CircularMoon
+    from ..ephemeris import DE421, ChebyshevEphemeris
 
     kind = spec.kind
     if kind == "two-body":

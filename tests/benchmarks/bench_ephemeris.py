@@ -5,7 +5,8 @@ Run: python tests/benchmarks/bench_ephemeris.py
 
 import timeit
 
-from optimizer.ephemeris import DE421, ChebyshevEphemeris, CircularMoon
+from optimizer.circular_moon import CircularMoon
+from optimizer.ephemeris import DE421, ChebyshevEphemeris
 
 T0 = 9000 * 86400.0
 de = DE421()
