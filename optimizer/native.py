@@ -2,11 +2,14 @@
 
 scipy's ``solve_ivp`` spends most of a coast in Python: ~2,000 right-hand-side calls of a few
 microseconds each and, per step, the stage sums and the dense-output set-up in numpy.  This engine
-takes the same DOP853 steps (the published tableau as scipy ships it, scipy's step-size control and
-first-step rule) in a small hand-written C file, compiled by the system C compiler on first use
-and loaded with ctypes; Python only builds scipy's own dense-output pieces from the step
-coefficients and runs scipy's own event search (``find_active_events``, ``handle_events``) on them,
-with the propagator's event functions unchanged.
+takes the same DOP853 steps (the published tableau, our transcription in :mod:`optimizer.tableau`,
+passed to C from Python; scipy's step-size control and first-step rule) in a small hand-written C
+file, compiled by the system C compiler on first use and loaded with ctypes; Python only builds
+scipy's own dense-output pieces from the step coefficients and runs scipy's own event search
+(``find_active_events``, ``handle_events``) on them, with the propagator's event functions
+unchanged.  The private scipy names still imported (``OdeSolution``, ``find_active_events``,
+``handle_events``, ``prepare_events``, ``Dop853DenseOutput``) are that event search and dense
+output, kept so that the events and the interpolated states match scipy's exactly.
 
 It is part of the independent check: nothing here is generated, and nothing imports CasADi or the
 transcription.  It serves the Earth-centred models (:class:`~optimizer.models.EarthCentred` on a
@@ -31,11 +34,11 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
-from scipy.integrate._ivp import dop853_coefficients as _dop
 from scipy.integrate._ivp.common import OdeSolution
 from scipy.integrate._ivp.ivp import find_active_events, handle_events, prepare_events
 from scipy.integrate._ivp.rk import Dop853DenseOutput
 
+from . import tableau
 from .constants import J2_EARTH, R_EARTH
 from .toolchain import cache_root, compiler
 
@@ -44,8 +47,9 @@ CFLAGS = ("-O2", "-fPIC", "-shared")
 #: Accepted steps per C call when events are searched (a terminal event ends the coast between calls).
 CHUNK = 64
 
+#: The tableau as coast_dop853 takes it: all 16 stages' A (row-major, 16 wide), B, C, E3, E5, D.
 _COEFFS = tuple(np.ascontiguousarray(a, dtype=float) for a in
-                (_dop.A, _dop.B, _dop.C, _dop.E3, _dop.E5, _dop.D))
+                (tableau.A_ALL, tableau.B, tableau.C_ALL, tableau.E3, tableau.E5, tableau.D))
 _STATE = {"lib": None, "reason": None, "tried": False}
 _DP = ctypes.POINTER(ctypes.c_double)
 _IP = ctypes.POINTER(ctypes.c_int)

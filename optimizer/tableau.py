@@ -1,8 +1,11 @@
-"""The Butcher tableau of the fixed-step 8th-order Runge-Kutta scheme the NLP integrates with.
+"""The Butcher tableau of Dormand & Prince's 8(5,3) pair: the NLP's fixed-step scheme and the
+propagator's adaptive engine.
 
 One job: hold the 12-stage, 8th-order explicit Runge-Kutta coefficients of Dormand & Prince's
-8(5,3) pair (the stages and weights of the 8th-order solution only; the error estimators and the
-dense-output stages are not used).  Imports only numpy.
+8(5,3) pair (``A``, ``B``, ``C``: the fixed-step scheme of :mod:`optimizer.transcription`) and, for
+the adaptive engine of :mod:`optimizer.native`, the pair's error estimators (``E3``, ``E5``) and
+its dense output (``A_ALL``, ``C_ALL`` over 16 stages, ``D``; their source is given where they are
+written).  Imports only numpy.
 
 Source: E. Hairer, S. P. Nørsett and G. Wanner, *Solving Ordinary Differential Equations I.
 Nonstiff Problems*, 2nd ed., Springer, 1993 (the 8(5,3) pair of Dormand & Prince), with the
@@ -103,6 +106,130 @@ B[9] = -1.52160949662516078556178806805e-1
 B[10] = 2.01365400804030348374776537501e-1
 B[11] = 4.47106157277725905176885569043e-2
 
-for _array in (A, B, C):
+# ------------------------------------------------------------------------------------------------
+# The adaptive engine's extra coefficients (optimizer/native.py, optimizer/data/coast.c): the two
+# error estimators and the dense output.  Source: the same book (the 8(5,3) pair and its dense
+# output of order 7) and Hairer & Wanner's DOP853 code (subroutine DP86CO: ``bhh1..bhh3``,
+# ``er1..er12``, ``c14..c16``, ``a141..a1615``, ``d41..d716``; names from memory).  The values were
+# transcribed: written out once from scipy's table of that code's numbers
+# (``scipy.integrate._ivp.dop853_coefficients``), the 30-digit decimals as printed there, not
+# re-typed from the Fortran.  ``tests/test_tableau.py`` compares them with scipy's to the last bit
+# and checks the order conditions they must meet (dense output of order 7, estimators of order 5
+# and 3 - the orders the book gives the pair, from memory).
+# ------------------------------------------------------------------------------------------------
+STAGES_ALL = 16  #: the 12 stages, the right-hand side at the step's end, and 3 dense-output stages
+
+#: Nodes of all 16 stages: C, then 1 (stage 13 is the right-hand side at the new point), then the
+#: dense-output stages' c14, c15, c16.
+C_ALL = np.array([*C, 1.0, 0.1, 0.2, 0.777777777777777777777777777778])
+
+#: Stage coefficients of all 16 stages: A, then row 13 = B (the new point y + h sum_i b_i k_i),
+#: then the dense-output stages' rows a14,j .. a16,j.
+A_ALL = np.zeros((STAGES_ALL, STAGES_ALL))
+A_ALL[:STAGES, :STAGES] = A
+A_ALL[STAGES, :STAGES] = B
+A_ALL[13, 0] = 5.61675022830479523392909219681e-2
+A_ALL[13, 6] = 2.53500210216624811088794765333e-1
+A_ALL[13, 7] = -2.46239037470802489917441475441e-1
+A_ALL[13, 8] = -1.24191423263816360469010140626e-1
+A_ALL[13, 9] = 1.5329179827876569731206322685e-1
+A_ALL[13, 10] = 8.20105229563468988491666602057e-3
+A_ALL[13, 11] = 7.56789766054569976138603589584e-3
+A_ALL[13, 12] = -8.298e-3
+A_ALL[14, 0] = 3.18346481635021405060768473261e-2
+A_ALL[14, 5] = 2.83009096723667755288322961402e-2
+A_ALL[14, 6] = 5.35419883074385676223797384372e-2
+A_ALL[14, 7] = -5.49237485713909884646569340306e-2
+A_ALL[14, 10] = -1.08347328697249322858509316994e-4
+A_ALL[14, 11] = 3.82571090835658412954920192323e-4
+A_ALL[14, 12] = -3.40465008687404560802977114492e-4
+A_ALL[14, 13] = 1.41312443674632500278074618366e-1
+A_ALL[15, 0] = -4.28896301583791923408573538692e-1
+A_ALL[15, 5] = -4.69762141536116384314449447206
+A_ALL[15, 6] = 7.68342119606259904184240953878
+A_ALL[15, 7] = 4.06898981839711007970213554331
+A_ALL[15, 8] = 3.56727187455281109270669543021e-1
+A_ALL[15, 12] = -1.39902416515901462129418009734e-3
+A_ALL[15, 13] = 2.9475147891527723389556272149
+A_ALL[15, 14] = -9.15095847217987001081870187138
+
+#: Weights of the 3rd-order embedded solution (``bhh1``, ``bhh2``, ``bhh3`` on stages 1, 9, 12).
+BHH = np.zeros(STAGES)
+BHH[0] = 0.244094488188976377952755905512
+BHH[8] = 0.733846688281611857341361741547
+BHH[11] = 0.220588235294117647058823529412e-1
+
+#: 3rd-order error estimator over stages 1..13: b - bhh (the code's ``err3``), stage 13 unused.
+#: Formed by the same three subtractions as the code and scipy, so the doubles are the same.
+E3 = np.zeros(STAGES + 1)
+E3[:-1] = B
+E3[0] -= BHH[0]
+E3[8] -= BHH[8]
+E3[11] -= BHH[11]
+
+#: 5th-order error estimator over stages 1..13 (``er1``, ``er6`` .. ``er12``; the others zero).
+E5 = np.zeros(STAGES + 1)
+E5[0] = 0.1312004499419488073250102996e-1
+E5[5] = -0.1225156446376204440720569753e+1
+E5[6] = -0.4957589496572501915214079952
+E5[7] = 0.1664377182454986536961530415e+1
+E5[8] = -0.3503288487499736816886487290
+E5[9] = 0.3341791187130174790297318841
+E5[10] = 0.8192320648511571246570742613e-1
+E5[11] = -0.2235530786388629525884427845e-1
+
+#: Dense output: rows 4..7 of the continuous extension's coefficients (``d4,j`` .. ``d7,j``) over
+#: all 16 stages; rows 1..3 come from the step's two ends (``optimizer/data/coast.c``).
+D = np.zeros((4, STAGES_ALL))
+D[0, 0] = -0.84289382761090128651353491142e+1
+D[0, 5] = 0.56671495351937776962531783590
+D[0, 6] = -0.30689499459498916912797304727e+1
+D[0, 7] = 0.23846676565120698287728149680e+1
+D[0, 8] = 0.21170345824450282767155149946e+1
+D[0, 9] = -0.87139158377797299206789907490
+D[0, 10] = 0.22404374302607882758541771650e+1
+D[0, 11] = 0.63157877876946881815570249290
+D[0, 12] = -0.88990336451333310820698117400e-1
+D[0, 13] = 0.18148505520854727256656404962e+2
+D[0, 14] = -0.91946323924783554000451984436e+1
+D[0, 15] = -0.44360363875948939664310572000e+1
+D[1, 0] = 0.10427508642579134603413151009e+2
+D[1, 5] = 0.24228349177525818288430175319e+3
+D[1, 6] = 0.16520045171727028198505394887e+3
+D[1, 7] = -0.37454675472269020279518312152e+3
+D[1, 8] = -0.22113666853125306036270938578e+2
+D[1, 9] = 0.77334326684722638389603898808e+1
+D[1, 10] = -0.30674084731089398182061213626e+2
+D[1, 11] = -0.93321305264302278729567221706e+1
+D[1, 12] = 0.15697238121770843886131091075e+2
+D[1, 13] = -0.31139403219565177677282850411e+2
+D[1, 14] = -0.93529243588444783865713862664e+1
+D[1, 15] = 0.35816841486394083752465898540e+2
+D[2, 0] = 0.19985053242002433820987653617e+2
+D[2, 5] = -0.38703730874935176555105901742e+3
+D[2, 6] = -0.18917813819516756882830838328e+3
+D[2, 7] = 0.52780815920542364900561016686e+3
+D[2, 8] = -0.11573902539959630126141871134e+2
+D[2, 9] = 0.68812326946963000169666922661e+1
+D[2, 10] = -0.10006050966910838403183860980e+1
+D[2, 11] = 0.77771377980534432092869265740
+D[2, 12] = -0.27782057523535084065932004339e+1
+D[2, 13] = -0.60196695231264120758267380846e+2
+D[2, 14] = 0.84320405506677161018159903784e+2
+D[2, 15] = 0.11992291136182789328035130030e+2
+D[3, 0] = -0.25693933462703749003312586129e+2
+D[3, 5] = -0.15418974869023643374053993627e+3
+D[3, 6] = -0.23152937917604549567536039109e+3
+D[3, 7] = 0.35763911791061412378285349910e+3
+D[3, 8] = 0.93405324183624310003907691704e+2
+D[3, 9] = -0.37458323136451633156875139351e+2
+D[3, 10] = 0.10409964950896230045147246184e+3
+D[3, 11] = 0.29840293426660503123344363579e+2
+D[3, 12] = -0.43533456590011143754432175058e+2
+D[3, 13] = 0.96324553959188282948394950600e+2
+D[3, 14] = -0.39177261675615439165231486172e+2
+D[3, 15] = -0.14972683625798562581422125276e+3
+
+for _array in (A, B, C, C_ALL, A_ALL, BHH, E3, E5, D):
     _array.setflags(write=False)
 del _array

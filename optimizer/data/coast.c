@@ -6,10 +6,11 @@
  * ICRF z axis), the Moon and Sun from a Chebyshev series (optimizer/ephemeris.py's fit) or a
  * circular Moon.  The step is the explicit Runge-Kutta method of order 8(5,3) of Dormand and
  * Prince (Hairer, Norsett & Wanner, Solving ODEs I, 2nd ed., section II.10) with its 7th-order
- * dense output; the tableau is given by the caller (scipy's published coefficients), and the
- * step-size control follows scipy's DOP853 (error norm from the 5th- and 3rd-order estimates,
- * safety 0.9, factors 0.2-10, exponent -1/8, its initial-step rule), so that both engines take
- * comparable steps.  Events are found by the caller on the dense output, as scipy does.
+ * dense output; the tableau is given by the caller (optimizer/tableau.py's transcription of the
+ * published coefficients, passed in by optimizer/native.py), and the step-size control follows
+ * scipy's DOP853 (error norm from the 5th- and 3rd-order estimates, safety 0.9, factors 0.2-10,
+ * exponent -1/8, its initial-step rule), so that both engines take comparable steps.  Events are
+ * found by the caller on the dense output, as scipy does.
  *
  * Model numbers p[]: 0 GM Earth, 1 GM Moon, 2 GM Sun, 3 -1.5 J2 GM_E R_E^2, 4-5 valid epochs
  * [lo, hi]; Chebyshev (ip[0] = 0): 6 window middle, 7 1 / half-length, 8... n rows of
