@@ -512,8 +512,10 @@ def basins(seeds, limit=MAX_STARTS) -> list[Seed]:
 def global_solve(problem, model, solve_from, say=lambda m: None):
     """Screen, then solve the most promising starts and keep the cheapest verified plan.
 
-    ``solve_from(burns)`` solves the NLP from the path through ``burns`` [(epoch, dv km/s) per burn
-    of the problem] and returns a Plan (the solver's loop, verification included).  Returns (the
+    ``solve_from(burns, explore)`` solves the NLP from the path through ``burns`` [(epoch, dv km/s)
+    per burn of the problem] and returns a Plan (the solver's loop, verification included);
+    ``explore`` is True for a start made after a verified plan was found (the chain gives it a
+    smaller budget).  Returns (the
     cheapest verified Plan or None, the record of every seed and start); None also when no seed met
     the ranges (the caller falls back on its own guess).
     """
@@ -542,7 +544,7 @@ def global_solve(problem, model, solve_from, say=lambda m: None):
             f"{(s.epoch - problem.start.epoch) / HOUR:.1f} h ({s.family}), screened {s.dv_mps:.3f} m/s")
         t0 = time.perf_counter()
         try:
-            plan = solve_from(burns)
+            plan = solve_from(burns, explore=best is not None)
         except ValueError as exc:  # SolveError: no starting point from this seed
             record["starts"].append({**s.record(), "status": "no starting point", "reason": str(exc),
                                      "wall_s": round(time.perf_counter() - t0, 3)})

@@ -44,21 +44,29 @@ from .base import SolveError, held_burns, usable_burns
 from .guess import initial_guess, model_span, path_guess, relayout
 from .ipopt import RETRIES, active_caches, constraint_violations, solve_nlp
 from .primer import PRIMER_TOL, RELEASE_MPS, primer_scan, release_candidates
-from .search import global_solve, screened, search_summary
+from .search import SKIP_MPS, SKIP_RATIO, global_solve, screened, search_summary
 
 #: Local disagreement (km) between an NLP segment and the propagator above which a coast is refined.
 SEGMENT_TOL_KM = 1e-3
 #: Burns below this size (m/s) after a verified solve are tried at exactly zero.
 PRUNE_MPS = 0.1
+#: IPOPT iteration cap of a global-search start made after a verified plan is in hand (it only
+#: looks for a cheaper basin), and such a start is not retried with other settings.  Measured on
+#: the tuning half of tests/benchmarks/global_cases.py (33 cases): no start after the first ever
+#: gave the chosen plan; those starts took 131-300 iterations (and up to 52 s with the retries of
+#: one that failed), while every first start that verified took at most 173.
+EXPLORE_MAX_ITER = 150
 
 
 class _Run(NamedTuple):
     """What every step of one solve shares: where progress lines go, the caller's extra IPOPT
-    options, and the form of the problem a plan carries."""
+    options, the form of the problem a plan carries, and whether a stalled cold start is retried
+    with other IPOPT settings (:data:`optimizer.solve.ipopt.RETRIES`)."""
 
     say: Callable[[str], None]
     ipopt_options: dict | None
     problem_table: Callable[[Problem], dict]
+    retries: bool = True
 
 
 class Solved(NamedTuple):
@@ -238,9 +246,18 @@ def _staged(problem, model, run, stages, t_start, continued=False) -> Solved:
         held = [j for j in usable if j != alone]
         kept = [j for j in range(len(problem.burns)) if j not in held]
         reduced = replace(problem, burns=tuple(problem.burns[j] for j in kept))
-        if alone_plans and not _screen_finds_seeds(reduced, model if own is None else own):
-            run.say(f"burn {alone + 1} alone: no screened seed meets the ranges within its cap; not solved")
-            continue
+        if alone_plans:
+            best = min(a[0].total_dv_mps for a in alone_plans)
+            cheapest = _cheapest_screened(reduced, model if own is None else own)
+            if cheapest is None:
+                run.say(f"burn {alone + 1} alone: no screened seed meets the ranges within its cap; not solved")
+                continue
+            if cheapest > SKIP_RATIO * best + SKIP_MPS:
+                # the rule of the global layer's starts (search.SKIP_RATIO); the primer test on the
+                # cheapest plan below still asks whether this burn, added to it, would lower the cost
+                run.say(f"burn {alone + 1} alone: cheapest screened seed {cheapest:.3f} m/s, over "
+                        f"{SKIP_RATIO:g} x the verified {best:.3f} m/s + {SKIP_MPS:g}; not solved")
+                continue
         run.say(f"several burns: solving with burn {alone + 1} alone "
             f"(burn(s) {', '.join(str(j + 1) for j in held)} held at zero)")
         plan, tr1 = _whole_layout(reduced, own, run)
@@ -342,9 +359,15 @@ def _global_search(problem, model, tr, run, stages, t_start):
     st = problem.start
     tried = []
 
-    def solve_from(burns):
+    def solve_from(burns, explore=False):
         x0 = path_guess(problem, model, tr, st.epoch, np.asarray(st.state, dtype=float), burns)
-        solved = _solve_loop(problem, model, tr, x0, None, run, stages, t_start)
+        if explore:  # a verified plan is in hand: this start only looks for a cheaper basin
+            cap = min(EXPLORE_MAX_ITER, (run.ipopt_options or {}).get("ipopt.max_iter", EXPLORE_MAX_ITER))
+            run_here = run._replace(ipopt_options={**(run.ipopt_options or {}), "ipopt.max_iter": cap},
+                                    retries=False)
+        else:
+            run_here = run
+        solved = _solve_loop(problem, model, tr, x0, None, run_here, stages, t_start)
         tried.append(solved)
         return solved.plan
 
@@ -377,7 +400,7 @@ def _solve_loop(problem, model, tr, x0, lam, run, stages, t_start) -> Solved:
             # A cold start that stalls, or that IPOPT declares locally infeasible, is retried: the
             # verdict is about the iterates' neighbourhood.  Measured: the return-trim-only case
             # of tests/test_primer.py is "infeasible" at weight 0.3 and 1, solved at 0.1 and 0.03.
-            if rec["success"] or lam is not None or set(retry) & set(run.ipopt_options or {}):
+            if rec["success"] or lam is not None or not run.retries or set(retry) & set(run.ipopt_options or {}):
                 break
             run.say(f"IPOPT: {rec['status']} after {rec['iterations']} iterations; retrying with {label}")
             sol, rec = solve_nlp(tr, x0, None, {**(run.ipopt_options or {}), **retry})
@@ -450,14 +473,15 @@ def _prune(problem, solved: Solved, model, run) -> Solved:
 
 
 # -- helpers of the chain -------------------------------------------------------------------------
-def _screen_finds_seeds(problem, model) -> bool:
-    """Whether the global layer's screen finds any seed of ``problem`` inside its caps (the
-    screen is remembered, so the solve that follows does not repeat it)."""
+def _cheapest_screened(problem, model) -> float | None:
+    """Δv (m/s) of the cheapest seed of ``problem`` the global layer's screen finds inside its
+    caps, None when there is none, 0 for a parking-orbit start (not screened: always solved).  The
+    screen is remembered, so the solve that follows does not repeat it."""
     if is_injection(problem):  # the search screens state starts only
-        return True
+        return 0.0
     model = model or build_model(problem.model, *model_span(problem))
     seeds, _ = screened(problem, model)
-    return any(s.dv is not None for s in seeds)
+    return min((s.dv_mps for s in seeds if s.dv is not None), default=None)
 
 
 def _with_zero_burns(problem, model, first, burns, kept, steps, start, run):
