@@ -65,7 +65,7 @@ MODES = ("auto", "wait", "off")
 #: no parameters)
 NLPSOL_OPTIONS = {"calc_lam_p": False}
 _HERE = Path(__file__).resolve().parent
-_SOURCES = (_HERE / "transcription.py", _HERE / "compiled.py")
+_SOURCES = (_HERE / "transcription.py", _HERE / "derivatives.py", _HERE / "compiled.py")
 _LOADED: dict = {}  # library path -> {name: external Function}, per process
 
 
