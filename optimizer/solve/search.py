@@ -57,6 +57,13 @@ FD_STEP, STOP_STEP = 1e-4, 1e-5
 #: Targeting gives up when its trust region shrinks below STALL_RADIUS (km/s); a point whose
 #: violation is at most NEAR units (see ``target``) still seeds the NLP.
 STALL_RADIUS, NEAR = 1e-5, 5.0
+#: A start whose verified answer costs more than UPHILL_RATIO x its screened Δv + SKIP_MPS is
+#: solved once more with other settings.  The NLP's answer from a seed that met the ranges is
+#: normally at or below the seed's screened Δv (measured on the tuning half of
+#: tests/benchmarks/global_cases.py: 0.1-1 % below); tuning-half seed 58 ended at 56.67 m/s from a
+#: 36.35 m/s seed (36.27 m/s with the lighter objective weight), after a rounding-level change of
+#: the NLP's evaluation.
+UPHILL_RATIO = 1.1
 HOUR = 3600.0
 
 
@@ -512,10 +519,10 @@ def basins(seeds, limit=MAX_STARTS) -> list[Seed]:
 def global_solve(problem, model, solve_from, say=lambda m: None):
     """Screen, then solve the most promising starts and keep the cheapest verified plan.
 
-    ``solve_from(burns, explore)`` solves the NLP from the path through ``burns`` [(epoch, dv km/s)
+    ``solve_from(burns, explore, uphill)`` solves the NLP from the path through ``burns`` [(epoch, dv km/s)
     per burn of the problem] and returns a Plan (the solver's loop, verification included);
     ``explore`` is True for a start made after a verified plan was found (the chain gives it a
-    smaller budget).  Returns (the
+    smaller budget); ``uphill`` asks for the chain's other IPOPT settings (see :data:`UPHILL_RATIO`).  Returns (the
     cheapest verified Plan or None, the record of every seed and start); None also when no seed met
     the ranges (the caller falls back on its own guess).
     """
@@ -529,7 +536,7 @@ def global_solve(problem, model, solve_from, say=lambda m: None):
         return None, record
     best, tried_epochs = None, []
     for s in candidates:
-        if len(record["starts"]) >= MAX_STARTS:
+        if len(tried_epochs) >= MAX_STARTS:
             break
         if best is not None and s.dv_mps > SKIP_RATIO * best.total_dv_mps + SKIP_MPS:
             break
@@ -540,24 +547,44 @@ def global_solve(problem, model, solve_from, say=lambda m: None):
         # their windows' middle
         burns = [(s.epoch, s.dv) if j == s.burn else (0.5 * sum(b.window), np.zeros(3))
                  for j, b in enumerate(problem.burns)]
-        say(f"search: start {len(record['starts']) + 1} from burn {s.burn + 1} at "
+        say(f"search: start {len(tried_epochs)} from burn {s.burn + 1} at "
             f"{(s.epoch - problem.start.epoch) / HOUR:.1f} h ({s.family}), screened {s.dv_mps:.3f} m/s")
-        t0 = time.perf_counter()
-        try:
-            plan = solve_from(burns, explore=best is not None)
-        except ValueError as exc:  # SolveError: no starting point from this seed
-            record["starts"].append({**s.record(), "status": "no starting point", "reason": str(exc),
-                                     "wall_s": round(time.perf_counter() - t0, 3)})
+        plan = _start(record, s, solve_from, burns, explore=best is not None)
+        if plan is None:
             continue
-        record["starts"].append({**s.record(), "status": plan.status, "total_dv_mps": plan.total_dv_mps,
-                                 "burn_epochs_tdb_s": [b.epoch for b in plan.burns],
-                                 "iterations": plan.solver.get("iterations"),
-                                 "wall_s": round(time.perf_counter() - t0, 3)})
+        index = len(record["starts"]) - 1
+        if plan.verified and plan.total_dv_mps > UPHILL_RATIO * s.dv_mps + SKIP_MPS:
+            # the NLP ended far above the screened cost of the point it started from, which already
+            # met the ranges: it went uphill into another basin.  Once more from the same start with
+            # the chain's other settings; the cheaper verified plan counts.
+            say(f"search: start {len(tried_epochs)} ended at {plan.total_dv_mps:.3f} m/s, over "
+                f"{UPHILL_RATIO:g} x its screened {s.dv_mps:.3f} m/s + {SKIP_MPS:g}: solving it again with "
+                "other settings")
+            again = _start(record, s, solve_from, burns, explore=best is not None, uphill=True)
+            if again is not None and again.verified and again.total_dv_mps < plan.total_dv_mps:
+                plan, index = again, len(record["starts"]) - 1
         if plan.verified and (best is None or plan.total_dv_mps < best.total_dv_mps - 1e-6):
             best = plan
-            record["chosen"] = len(record["starts"]) - 1
+            record["chosen"] = index
     record["search_s"] = round(time.perf_counter() - t_start, 3)
     return best, record
+
+
+def _start(record, seed, solve_from, burns, **how):
+    """One NLP start from ``seed`` (``how``: ``solve_from``'s flags), recorded in ``record``;
+    returns its plan, or None when the seed gave no starting point."""
+    t0 = time.perf_counter()
+    entry = {**seed.record(), **{k: True for k, v in how.items() if v}}
+    try:
+        plan = solve_from(burns, **how)
+    except ValueError as exc:  # SolveError: no starting point from this seed
+        record["starts"].append({**entry, "status": "no starting point", "reason": str(exc),
+                                 "wall_s": round(time.perf_counter() - t0, 3)})
+        return None
+    record["starts"].append({**entry, "status": plan.status, "total_dv_mps": plan.total_dv_mps,
+                             "burn_epochs_tdb_s": [b.epoch for b in plan.burns],
+                             "iterations": plan.solver.get("iterations"), "wall_s": round(time.perf_counter() - t0, 3)})
+    return plan
 
 
 def failed_outcomes(seeds) -> dict:

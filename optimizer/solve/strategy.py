@@ -359,14 +359,15 @@ def _global_search(problem, model, tr, run, stages, t_start):
     st = problem.start
     tried = []
 
-    def solve_from(burns, explore=False):
+    def solve_from(burns, explore=False, uphill=False):
         x0 = path_guess(problem, model, tr, st.epoch, np.asarray(st.state, dtype=float), burns)
+        run_here = run
         if explore:  # a verified plan is in hand: this start only looks for a cheaper basin
             cap = min(EXPLORE_MAX_ITER, (run.ipopt_options or {}).get("ipopt.max_iter", EXPLORE_MAX_ITER))
             run_here = run._replace(ipopt_options={**(run.ipopt_options or {}), "ipopt.max_iter": cap},
                                     retries=False)
-        else:
-            run_here = run
+        if uphill:  # the first retry's settings (a lighter objective weight) from the same start
+            run_here = run_here._replace(ipopt_options={**(run_here.ipopt_options or {}), **RETRIES[0][1]})
         solved = _solve_loop(problem, model, tr, x0, None, run_here, stages, t_start)
         tried.append(solved)
         return solved.plan
