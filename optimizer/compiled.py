@@ -9,7 +9,8 @@ the library is not built yet.
 
 Where: ``$SLINGBACK_CACHE_DIR`` if set, else ``$XDG_CACHE_HOME/slingback`` or ``~/.cache/slingback``;
 never inside the package.  Which library: the SHA-256 of everything the generated code depends on
-(CasADi's version, the compiler and its flags, the source of the transcription and of this module,
+(CasADi's version, the compiler and its flags, the source of the transcription, of its derivatives
+module and of this one,
 and the serialised objective and constraint functions, which hold the model's form, the mesh and
 the layout).
 
@@ -92,8 +93,10 @@ def cflags() -> tuple:
 
 def _parametric(tr) -> dict:
     """The NLP with its parameter vector (``p`` empty for an NLP without parameters)."""
-    nlp = getattr(tr, "nlp_parametric", None)
-    return nlp if nlp is not None else {**tr.nlp, "p": ca.MX.sym("p", 0, 1)}
+    # asked of the class: the property builds the NLP, and an error inside it must not read as "absent"
+    if hasattr(type(tr), "nlp_parametric"):
+        return tr.nlp_parametric
+    return {**tr.nlp, "p": ca.MX.sym("p", 0, 1)}
 
 
 def _defining(tr) -> list:
@@ -115,7 +118,7 @@ def _functions(tr, hessian: bool, defining: list) -> list:
     x, p = nlp["x"], nlp["p"]
     grad = ca.Function("nlp_grad_f", [x, p], [nlp["f"], ca.gradient(nlp["f"], x)],
                        ["x", "p"], ["f", "grad_f_x"])
-    d = tr.derivative_functions(hessian=hessian, parametric=True) if hasattr(tr, "nlp_parametric") \
+    d = tr.derivative_functions(hessian=hessian, parametric=True) if hasattr(type(tr), "nlp_parametric") \
         else tr.derivative_functions(hessian=hessian)
     # nlpsol differentiates the NLP once when it is set up (the gradient of the Lagrangian, for the
     # multipliers it reports): the library carries the reverse derivatives under the names CasADi's

@@ -5,8 +5,9 @@ integration enters the constraints only through the segment ends ``W`` (the defe
 so the constraint Jacobian is ``dg/dx|W + dg/dW dW/dx`` and the Lagrangian's Hessian is that of the
 W-free part plus, per segment, the Hessian of its defect multipliers times ``W``.  Each segment's
 7 x 8 Jacobian and 8 x 8 Hessian are SX functions mapped over a coast (in threads) instead of
-CasADi's colouring of the whole MX graph.  It reads the transcription's layout (``_shots``,
-``v``, ``steps``, ``segments``, ``p``/``p_value``, ``segment_function``, ``fix_parameters``).
+CasADi's colouring of the whole MX graph.  It reads the transcription's layout and functions
+(``_x``, ``_g_w``, ``f``, ``_shots``, ``v``, ``steps``, ``segments``, ``threads``, ``p``/``p_value``,
+``_segments`` (its function cache), ``segment_function``, ``fix_parameters``).
 
 May import numpy and CasADi only.
 """

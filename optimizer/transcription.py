@@ -58,8 +58,8 @@ from .derivatives import MAP_MODE, AssembledDerivatives
 from .models.base import inv_cube_casadi
 from .tableau import A as _RK_A, B as _RK_B  # Dormand & Prince's 12-stage 8th-order weights
 
-#: How segments of a coast are evaluated: CasADi map over threads (two cores on the reference machine).
-#: The default thread count; a transcription takes its own (``threads=``, or :func:`map_threads`).
+#: Threads of the CasADi map over a coast's segments (``derivatives.MAP_MODE``; two cores on the
+#: reference machine): the default; a transcription takes its own (``threads=``, or :func:`map_threads`).
 MAP_THREADS = 2
 _THREADS = ContextVar("slingback_map_threads", default=None)
 
@@ -222,8 +222,9 @@ class Transcription(AssembledDerivatives):
 
     # -- dynamics ------------------------------------------------------------------------------
     def _body_functions(self):
-        """Scaled Moon position/velocity, right-hand side in ``s``, and one RK8 step; each takes
-        the parameter vector (start epoch, then the model's numbers) as its last input."""
+        """Scaled Moon position/velocity and the right-hand side in ``s`` (both flavours, see
+        below); each takes the parameter vector (start epoch, then the model's numbers) as its
+        last input.  The RK8 step is :meth:`_step_function`."""
         sc, model = self.sc, self.model
         par = ca.SX.sym("p", self.p_value.size)
         t_ref, mpar = par[0], (par[1:] if self.p_value.size > 1 else None)
@@ -271,8 +272,8 @@ class Transcription(AssembledDerivatives):
         return self._segments[key]
 
     def segment_function(self, steps: int, parametric: bool = False) -> ca.Function:
-        """``M`` RK8 steps of length ``h / M``, expanded to SX; one Function per step count, shared
-        by the coasts (CasADi then generates its derivatives once: measured ~2x faster build).
+        """``M`` RK8 steps of length ``h / M``, expanded to SX; one Function per step count and
+        flavour, shared by the coasts (CasADi then generates its derivatives once: measured ~2x faster build).
         ``parametric``: the model's numbers read from the input ``p`` (else written in; ``p`` is
         then an input the function ignores)."""
         key = ("segment", steps, parametric)
@@ -292,7 +293,7 @@ class Transcription(AssembledDerivatives):
         return fn
 
     def _mapped(self, steps: int, parametric: bool = False) -> ca.Function:
-        """The segment function of ``steps`` mapped over a coast's segments (one per step count)."""
+        """The segment function of ``steps`` mapped over a coast's segments (one per step count and flavour)."""
         key = ("map", steps, parametric)
         if key not in self._segments:
             self._segments[key] = self.segment_function(steps, parametric).map(self.segments, MAP_MODE, self.threads)

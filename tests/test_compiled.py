@@ -170,8 +170,9 @@ def test_parametric_acceleration_matches_the_numpy_model_at_two_epochs(two_epoch
 def test_two_start_epochs_share_one_library_and_match_interpreted_verified(two_epochs, cache, monkeypatch):
     # one structure, two start epochs: the same key, one library in the cache, each problem solved
     # with it passes the independent re-propagation (scipy DOP853 on the numpy model), and its
-    # optimum is one of the interpreted NLP too (CasADi's virtual machine on the same expressions,
-    # started there: a library evaluating another NLP would send IPOPT elsewhere).
+    # optimum is one of the interpreted NLP too (CasADi's virtual machine on the same problem, with
+    # the model's numbers written in rather than passed as parameters, started there: a library
+    # evaluating another NLP would send IPOPT elsewhere).
     # -O0: compiles in tens of seconds instead of minutes; the key holds the flags.
     from optimizer import solve
 

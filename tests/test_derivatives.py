@@ -79,13 +79,27 @@ def test_assembled_derivatives_equal_casadis_own(case):
     np.testing.assert_allclose(_dense(h_new), _dense(h_ref), rtol=0, atol=1e-10 * scale)
 
 
-def test_assembled_derivatives_equal_finite_differences(case):
+@pytest.mark.parametrize("parametric", [False, True], ids=["values written in", "parameters kept"])
+def test_assembled_derivatives_equal_finite_differences(case, parametric):
+    """Both flavours: the one nlpsol evaluates (the model's numbers written in) and the one a
+    compiled library is generated from (the numbers as the parameter input ``p``), each against
+    central differences of its own constraints."""
     tr, x, lam_g = case
-    mine = tr.derivative_functions()
-    g_fn = ca.Function("g", [tr.nlp["x"]], [tr.nlp["g"]])
-    grad_l = ca.Function("gl", [tr.nlp["x"]], [ca.gradient(0.3 * tr.nlp["f"] + ca.dot(lam_g, tr.nlp["g"]), tr.nlp["x"])])
-    jac = _dense(mine["jac_g"](x, [])[1])
-    hess = _dense(mine["hess_lag"](x, [], 0.3, lam_g))
+    mine = tr.derivative_functions(parametric=parametric)
+    nlp = tr.nlp_parametric if parametric else {**tr.nlp, "p": ca.MX.sym("p", 0, 1)}
+    p = tr.p_value if parametric else []
+    g_sym = ca.Function("g", [nlp["x"], nlp["p"]], [nlp["g"]])
+    l_sym = ca.Function("gl", [nlp["x"], nlp["p"]],
+                        [ca.gradient(0.3 * nlp["f"] + ca.dot(lam_g, nlp["g"]), nlp["x"])])
+
+    def g_fn(xx):
+        return g_sym(xx, p)
+
+    def grad_l(xx):
+        return l_sym(xx, p)
+
+    jac = _dense(mine["jac_g"](x, p)[1])
+    hess = _dense(mine["hess_lag"](x, p, 0.3, lam_g))
     hess = np.triu(hess) + np.triu(hess, 1).T
     rng = np.random.default_rng(3)
     named = [sl.start for name, sl in tr.v.index.items() if not name.startswith("z")]  # S, burns, start

@@ -269,26 +269,43 @@ def test_best_plan_reproduces_the_cheapest_cell(case, swept):
     assert plan.burns[0].epoch == pytest.approx(best["burn_epoch_tdb_s"], abs=1e-3)
 
 
-def test_exact_fallback_runs_only_after_a_near_feasible_stall(case):
-    """A stalled limited-memory cell goes on with the exact Hessian only when it ended near
-    feasible (``cells.FALLBACK_MAX_INFEASIBILITY``).  The figure it reads is IPOPT's own primal
-    infeasibility of the last iterate: a verified solve ends at the constraint tolerance."""
-    from types import SimpleNamespace
-
-    from optimizer.trade import cells
-
-    reference = case[2]
-    last = reference.solver["attempts"][-1]["primal_infeasibility"]
+def test_a_verified_solve_records_its_final_primal_infeasibility(case):
+    """The figure the cells' exact-Hessian gate reads is IPOPT's own primal infeasibility of the
+    last iterate: a verified solve ends within the constraint tolerance."""
+    last = case[2].solver["attempts"][-1]["primal_infeasibility"]
     assert last is not None and 0.0 <= last <= 1e-8  # IPOPT_OPTIONS: constr_viol_tol 1e-10, acceptable 1e-9
 
-    def stalled(inf_pr):
-        return SimpleNamespace(solver={"attempts": [{"primal_infeasibility": inf_pr}]})
 
-    # measured (tests/benchmarks/bench_cell_fallback.py): a feasible stall ended at 8.4e-7 and
-    # the exact attempt verified it; cells without a solution ended at 0.15 to 5.0
-    assert cells._near_feasible(stalled(8.4e-7))
-    assert not cells._near_feasible(stalled(0.15))
-    assert cells._near_feasible(stalled(None))  # no record (an older store): the fallback is tried
+@pytest.mark.parametrize("inf_pr, solves", [(0.15, 1), (5.0, 1), (8.4e-7, 2), (None, 2)])
+def test_exact_fallback_runs_only_after_a_near_feasible_stall(case, monkeypatch, inf_pr, solves):
+    """A cell whose limited-memory attempt stalled at the iteration cap goes on with the exact
+    Hessian only when it ended near feasible (``cells.FALLBACK_MAX_INFEASIBILITY``).  The solver is
+    replaced by a stand-in that stalls; the figures are those measured by
+    tests/benchmarks/bench_cell_fallback.py (a feasible stall ended at 8.4e-7 and the exact attempt
+    verified it; cells without a solution ended at 0.15 to 5.0).  None: no finite figure was
+    reported, and the exact attempt is tried."""
+    import copy
+
+    import optimizer
+    from optimizer.trade import cells
+
+    problem, _, reference, _, _ = case
+    seen = []
+
+    def stalls(prob, warm=None, model=None, ipopt_options=None, **kwargs):
+        seen.append(dict(ipopt_options))
+        plan = copy.copy(reference)
+        plan.status, plan.reason = "failed", "IPOPT stopped with Maximum_Iterations_Exceeded"
+        plan.solver = {"attempts": [{"iterations": 100, "primal_infeasibility": inf_pr}]}
+        return plan
+
+    monkeypatch.setattr(optimizer, "solve", stalls)
+    rec, warm = cells.solve_task(problem, None, None, 100, 0)
+    assert rec["status"] == "failed" and warm is None
+    assert len(seen) == solves
+    assert seen[0]["ipopt.hessian_approximation"] == "limited-memory"
+    if solves == 2:
+        assert "ipopt.hessian_approximation" not in seen[1]  # the exact Hessian
 
 
 def test_write_trade_folder(swept, case, tmp_path):

@@ -44,7 +44,8 @@ IPOPT_OPTIONS = {
     "ipopt.obj_scaling_factor": 0.3,
 }
 #: Cold starts that stall, or that IPOPT declares locally infeasible, are retried from the same
-#: point with, in turn: measured on the robustness set (bench_robustness.py), cases 14 and 26
+#: point (not a global-search start made after a verified plan: it only explores) with, in turn:
+#: measured on the robustness set (bench_robustness.py), cases 14 and 26
 #: stall at the default objective weight and converge at 0.03; where the exact Hessian stalls, a
 #: quasi-Newton run from the same start often converges.
 RETRIES = (("a lighter objective weight (0.03)", {"ipopt.obj_scaling_factor": 0.03}),
@@ -146,10 +147,13 @@ def solve_nlp(tr: Transcription, x0, lam=None, extra=None):
     st = solver.stats()
     timing = {k[7:]: round(v, 4) for k, v in st.items() if k.startswith("t_wall_nlp_")}
 
-    # IPOPT's primal infeasibility (largest violation of the scaled constraints) at the last
-    # iterate: a stalled attempt that ended near-feasible is worth continuing, one far from it not
-    trace = [float(v) for v in st.get("iterations", {}).get("inf_pr", []) if math.isfinite(v)]
-    return sol, {"primal_infeasibility": trace[-1] if trace else None, "timing_s": timing, "build_s": round(t_build, 4),
+    # IPOPT's primal infeasibility ("inf_pr" of its iteration log) at the last iterate: a stalled
+    # attempt that ended near-feasible is worth continuing, one far from it not.  None when IPOPT
+    # logged no iteration or a non-finite figure.
+    trace = st.get("iterations", {}).get("inf_pr") or [math.nan]
+    last = float(trace[-1])
+    return sol, {"primal_infeasibility": last if math.isfinite(last) else None, "timing_s": timing,
+                 "build_s": round(t_build, 4),
                  "evaluation": getattr(solver, "slingback_evaluation", None), "status": st["return_status"],
                  "success": bool(st["success"]), "iterations": int(st["iter_count"]),
                  "wall_s": wall, "objective": float(sol["f"])}

@@ -10,8 +10,8 @@
    with the propagator get more integration steps and the NLP is re-solved from its last answer.
    A plan that still fails is returned as ``"unverified"`` with the reason, never as an optimum.
 4. **Prune, stage, continue.**  Burns under :data:`PRUNE_MPS` are re-solved at zero; several burns
-   are staged (each usable burn alone, then the primer test of the others, :mod:`.primer`); model
-   continuation solves cheaper models first.
+   are staged (each usable burn alone, unless its screen is far above a verified one, then the
+   primer test of the others, :mod:`.primer`); model continuation solves cheaper models first.
 
 The chain reads top to bottom and never calls :func:`solve` again: ``solve`` -> ``_design``
 (continuation, the staged solve of several burns, or one layout) -> ``_one_layout`` (warm point,
@@ -92,6 +92,8 @@ def solve(problem: Problem, *, warm: Plan | None = None, progress=None, model=No
         Prebuilt model (must cover the problem's span); built from ``problem.model`` otherwise.
     ipopt_options : dict, optional
         Extra CasADi/IPOPT options (e.g. ``{"ipopt.print_level": 5}`` to watch the iterations).
+        A global-search start made after a verified plan is capped at :data:`EXPLORE_MAX_ITER`
+        iterations (or the given ``ipopt.max_iter`` if smaller), its refinements and pruning too.
     cache : NLPCache or False, optional
         Built solvers to reuse (default: one cache per thread, kept between calls); ``False``
         builds every solver afresh.
@@ -221,8 +223,9 @@ def _staged(problem, model, run, stages, t_start, continued=False) -> Solved:
     """Several burns, cold: solve with one burn alone, test the others (held at zero) with the
     primer vector, then give the whole layout's answer.
 
-    1. The problem with only the first listed usable burn (the next one if that does not verify;
-       all burns together if none does) is solved and verified.
+    1. The problem with each usable burn alone is solved and verified, the cheapest verified one
+       going on (all burns together if none verifies).  A burn alone whose cheapest screened seed
+       costs over ``SKIP_RATIO`` x the cheapest verified plan so far + ``SKIP_MPS`` is not solved.
     2. :func:`primer_scan` on its multipliers: if no node of a held burn's window has |p| > 1, the
        answer without it is a KKT point of the whole problem.  The held burn is then returned at
        zero at its node of largest |p| (the same path, so the same verification), with a primal

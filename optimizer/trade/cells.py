@@ -59,10 +59,10 @@ FALLBACK_CAP_SHARE = 1.0
 #: The exact-Hessian attempt is made only when the stalled limited-memory one ended at most this
 #: far from feasible (IPOPT's primal infeasibility of its last iterate).  Measured by
 #: ``tests/benchmarks/bench_cell_fallback.py`` (cells of the test grid of tests/test_trade.py and of
-#: the demo-trade grid, each warm-started from its verified neighbour): a feasible cell whose limited-memory attempt stalled
-#: ended at 8.4e-7 and the exact attempt then verified it; cells with no solution (arrival too
-#: early for the perilune range) ended at 0.15 to 5.0, and 100 more exact iterations never
-#: verified one.  Below this, the exact attempt runs; above, the cell fails fast (a retry from
+#: the demo-trade grid, each warm-started from its verified neighbour): a feasible cell whose
+#: limited-memory attempt stalled ended at 8.4e-7 and the exact attempt then verified it; cells
+#: with no solution (arrival too early for the perilune range) ended at 0.15 to 5.0, and 100 more
+#: exact iterations never verified one.  Below this, the exact attempt runs; above, the cell fails fast (a retry from
 #: another verified neighbour may still solve it).
 FALLBACK_MAX_INFEASIBILITY = 1e-3
 
