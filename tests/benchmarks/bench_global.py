@@ -22,7 +22,7 @@ reference, end-to-end seconds; and the goals of the issue, met or missed:
 
 The table is also written to ``outputs/bench_global-<half>.csv`` (through a temporary file).
 
-Run: python tests/benchmarks/bench_global.py [--half tune|heldout|all] [--cases N] [--workers W]
+Run: python tests/benchmarks/bench_global.py [--half tune|heldout|all] [--cases N] [--workers W] [--segments N]
      [--recompute-references] [--seeds S [S ...]] [--cached-only] [--rescore CSV]
 """
 
@@ -54,10 +54,15 @@ ABOVE_REL, ABOVE_ABS = 1e-4, 1e-3  # above the planted bound: by more than 0.01 
 GOALS = {"verified_pct": 98.0, "within_pct": 97.0, "above_bound": 0, "median_s": 5.0, "p95_s": 20.0}
 
 
-def _solve_worker(d):
+def _solve_worker(job):
+    d, segments = job
     warnings.simplefilter("ignore")
+    from dataclasses import replace
+
     from optimizer import solve
     case = gc.case_from_dict(d)
+    if segments:  # the cases carry the mesh they were generated with; this measures another
+        case = replace(case, problem=replace(case.problem, mesh=replace(case.problem.mesh, segments=segments)))
     t = time.perf_counter()
     try:
         plan = solve(case.problem)
@@ -86,6 +91,8 @@ def main(argv=None):
     ap.add_argument("--cached-only", action="store_true",
                     help="only cases already generated; no reference computed (missing ones: no reference)")
     ap.add_argument("--csv", help="write the table here (default outputs/bench_global-<half>.csv)")
+    ap.add_argument("--segments", type=int, default=None,
+                    help="solve every case with this many segments per phase instead of its own mesh's")
     ap.add_argument("--rescore", metavar="CSV[,CSV...]",
                     help="no solving: re-join the tables of earlier runs with the references now cached")
     args = ap.parse_args(argv)
@@ -105,11 +112,12 @@ def main(argv=None):
     print(f"{len(cases)} cases ({args.half if not args.seeds else 'chosen seeds'}), generator "
           f"{gc.GENERATOR_VERSION}, scanner {gr.SCANNER_VERSION}; {args.workers} solver process(es); "
           f"load average {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores; SLINGBACK_COMPILE="
-          f"{os.environ['SLINGBACK_COMPILE']}, propagator engine {os.environ.get('SLINGBACK_PROPAGATOR', 'default')}",
+          f"{os.environ['SLINGBACK_COMPILE']}, propagator engine {os.environ.get('SLINGBACK_PROPAGATOR', 'default')}"
+          + (f", every case at {args.segments} segments per phase" if args.segments else ""),
           flush=True)
 
     rows, by_seed = [], {c.seed: c for c in cases}
-    dicts = [gc.case_to_dict(c) for c in cases]
+    dicts = [(gc.case_to_dict(c), args.segments) for c in cases]
     t_all = time.perf_counter()
     if args.workers > 1:
         with mp.get_context("spawn").Pool(args.workers) as pool:
