@@ -166,6 +166,21 @@ class Result:
         self.status, self.message, self.nfev = status, message, nfev
 
 
+class _DenseOutput:
+    """scipy's ``OdeSolution`` of the steps, built on the first call: most coasts (the global
+    search's screening, the verifier's event legs) never ask for a state between steps, and
+    building one interpolant object per step was a third of a short coast's time."""
+
+    def __init__(self, t, pieces):
+        self._t, self._pieces, self._sol = t, pieces, None
+
+    def __call__(self, t):
+        if self._sol is None:
+            self._sol = OdeSolution(self._t, [Dop853DenseOutput(*p) for p in self._pieces])
+            self._pieces = None
+        return self._sol(t)
+
+
 def integrate(model, t0, y0, t1, *, rtol, atol, max_step=np.inf, events=None) -> Result:
     """DOP853 from ``(t0, y0)`` to ``t1`` in C, with dense output and ``solve_ivp``'s event logic.
 
@@ -184,7 +199,7 @@ def integrate(model, t0, y0, t1, *, rtol, atol, max_step=np.inf, events=None) ->
         t_events, y_events = [[] for _ in events], [[] for _ in events]
     else:
         t_events = y_events = None
-    ts, ys, interps = [t], [y], []
+    ts, ys, pieces = [t], [y], []  # pieces: each step's dense-output data (built into objects lazily)
     status, message = None, "The solver successfully reached the end of the integration interval."
     n_out, nf_out = ctypes.c_int(), ctypes.c_int()
     h_out, t_fail = ctypes.c_double(), ctypes.c_double()
@@ -197,8 +212,7 @@ def integrate(model, t0, y0, t1, *, rtol, atol, max_step=np.inf, events=None) ->
         n, nfev, h_abs = n_out.value, nfev + nf_out.value, h_out.value
         for k in range(n):
             t_old, t_new, y_old, y_new = float(T[k]), float(T[k + 1]), Y[k], Y[k + 1]
-            sol = Dop853DenseOutput(t_old, t_new, y_old, F[k])
-            interps.append(sol)
+            pieces.append((t_old, t_new, y_old, F[k]))
             t_end, y_end = t_new, y_new
             if events:
                 g_new = [ev(t_new, y_new) for ev in events]
@@ -206,6 +220,7 @@ def integrate(model, t0, y0, t1, *, rtol, atol, max_step=np.inf, events=None) ->
                 changed = any(not ((a > 0 and b > 0) or (a < 0 and b < 0)) for a, b in zip(g, g_new))
                 active = find_active_events(g, g_new, event_dir) if changed else ()
                 if len(active) > 0:
+                    sol = Dop853DenseOutput(t_old, t_new, y_old, F[k])
                     event_count[active] += 1
                     roots_i, roots, terminate = handle_events(sol, events, active, event_count, max_events,
                                                               t_old, t_new)
@@ -219,7 +234,7 @@ def integrate(model, t0, y0, t1, *, rtol, atol, max_step=np.inf, events=None) ->
                         y_end = sol(t_end)
                 g = g_new
             if len(ts) > 1 and ts[-1] == t_end:
-                interps.pop()
+                pieces.pop()
             else:
                 ts.append(t_end)
                 ys.append(np.array(y_end))
@@ -236,7 +251,7 @@ def integrate(model, t0, y0, t1, *, rtol, atol, max_step=np.inf, events=None) ->
             else:
                 t, y = float(T[n]), Y[n].copy()
     t_arr = np.array(ts)
-    sol = OdeSolution(t_arr, interps) if interps else None
+    sol = _DenseOutput(t_arr, pieces) if pieces else None
     if t_events is not None:
         t_events = [np.asarray(te) for te in t_events]
         y_events = [np.asarray(ye) for ye in y_events]

@@ -36,7 +36,7 @@ two problems of the same structure (phases, mesh, burn kinds, model kind and ser
 the same parametric functions, so one compiled library serves both (``optimizer/compiled.py``).
 ``self.nlp`` is the parameter-free NLP that nlpsol and the tests use: its segment functions have
 the values written in before CasADi builds them (constants folded, the padded series' zero terms
-gone); ``self.nlp_parametric`` keeps ``p`` (built on first use, for the compiled library).
+gone); ``self.nlp_parametric`` keeps ``p`` (for the compiled library).  Each is built on first use.
 
 Its exact derivatives, assembled per segment, are the base class in :mod:`optimizer.derivatives`.
 
@@ -189,7 +189,6 @@ class Transcription(AssembledDerivatives):
         self._set_objective(v)
         x, self._g_w = ca.vertcat(*v.x), ca.vertcat(*v.g)
         self._x = x
-        self.nlp = {"x": x, "f": self.f, "g": self.fix_parameters(self._g_with_segments(parametric=False))}
         self.lbx, self.ubx = np.concatenate(v.lbx), np.concatenate(v.ubx)
         self.x0 = np.concatenate(v.x0)
         self.lbg, self.ubg = np.concatenate(v.lbg), np.concatenate(v.ubg)
@@ -201,6 +200,17 @@ class Transcription(AssembledDerivatives):
                                                         ca.repmat(slen / self.segments, 1, self.segments), self.p)
                 for k, nodes, slen, _ in self._shots]
         return ca.substitute([self._g_w], [w for *_, w in self._shots], ends)[0]
+
+    @property
+    def nlp(self) -> dict:
+        """The NLP nlpsol solves when its functions are interpreted: the model's numbers written
+        in (constants folded); built on first use (a compiled library needs only
+        :attr:`nlp_parametric`)."""
+        key = "nlp"
+        if key not in self._segments:
+            self._segments[key] = {"x": self._x, "f": self.f,
+                                   "g": self.fix_parameters(self._g_with_segments(parametric=False))}
+        return self._segments[key]
 
     @property
     def nlp_parametric(self) -> dict:
@@ -515,7 +525,7 @@ class Transcription(AssembledDerivatives):
             zs = x[v.index[f"z{p.index}"]].reshape(7, -1, order="F") * scale[:, None]
             zs[6] += sc.t_ref
             phases.append(zs)
-        fn = ca.Function("dv", [self.nlp["x"]], [ca.horzcat(*self.dv), self.z_start])
+        fn = ca.Function("dv", [self._x], [ca.horzcat(*self.dv), self.z_start])
         dvs, z0 = (np.array(a) for a in fn(x))
         dvs *= sc.vu
         start = z0.ravel() * scale
