@@ -123,8 +123,10 @@ def test_pareto_with_a_duration_tolerance(data, tol):
 # ------------------------------------------------------------------------------------------------
 # A real sweep
 # ------------------------------------------------------------------------------------------------
-@pytest.fixture(scope="module")
-def case():
+def trade_case_problem():
+    """The invented problem of the test sweep (also used by tests/benchmarks/bench_cell_fallback.py):
+    a ballistic free return through a 150 km perilune, nudged by +10 m/s along the velocity 40 h
+    before perilune; one burn 1-12 h after the start.  Returns (problem, model)."""
     model = build_model(ModelSpec(), T_PERI - 6 * DAY, T0 + 12 * DAY)  # the problem's span (no arrival window)
     y_peri, _, _ = fr.build(model, T_PERI)
     y0 = propagate(model, T_PERI, y_peri, T0).y[:, -1]
@@ -133,6 +135,12 @@ def case():
                       burns=(BurnSpec((T0 + 3600.0, T0 + 12 * 3600.0), 300.0),),
                       lunar=LunarPass((100.0, 5000.0)), arrival=ReturnSpec(flight_path_deg=(-7.0, -5.5)),
                       summary="invented test case")
+    return problem, model
+
+
+@pytest.fixture(scope="module")
+def case():
+    problem, model = trade_case_problem()
     reference = solve(problem, model=model)  # the unconstrained optimum (minimum Δv already)
     assert reference.verified, reference.reason
     t_arr = reference.event("entry").epoch

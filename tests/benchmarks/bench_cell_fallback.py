@@ -27,7 +27,6 @@ import sys
 import time
 import tomllib
 
-import numpy as np
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.dirname(HERE))  # tests/
@@ -83,24 +82,13 @@ def demo_grid(rows):
     return out
 
 
-def test_grid(rows):
-    import free_return_fixture as fr
+def sweep_test_grid(rows):
     import test_trade as tt
     from optimizer import solve
-    from optimizer.models import build_model
-    from optimizer.problem import BurnSpec, LunarPass, ModelSpec, Problem, ReturnSpec, StateStart
-    from optimizer.propagate import propagate
     from optimizer.trade import cells
 
-    t0, t_peri = tt.T0, tt.T_PERI
-    model = build_model(ModelSpec(), t_peri - 6 * DAY, t0 + 12 * DAY)
-    y_peri, _, _ = fr.build(model, t_peri)
-    y0 = propagate(model, t_peri, y_peri, t0).y[:, -1]
-    y0[3:] += 10e-3 * y0[3:] / np.linalg.norm(y0[3:])
-    problem = Problem(name="trade-test", start=StateStart(t0, tuple(y0)),
-                      burns=(BurnSpec((t0 + 3600.0, t0 + 12 * 3600.0), 300.0),),
-                      lunar=LunarPass((100.0, 5000.0)), arrival=ReturnSpec(flight_path_deg=(-7.0, -5.5)),
-                      summary="invented test case")
+    t0 = tt.T0
+    problem, model = tt.trade_case_problem()
     refplan = solve(problem, model=model)
     t_arr = refplan.event("entry").epoch
     out = []
@@ -124,7 +112,7 @@ def main():
     args = ap.parse_args()
     print(f"threshold FALLBACK_MAX_INFEASIBILITY = {FALLBACK_MAX_INFEASIBILITY:g}")
     print("neighbours (warm from the reference):")
-    jobs = test_grid(args.test_rows) + demo_grid(args.demo_rows)
+    jobs = sweep_test_grid(args.test_rows) + demo_grid(args.demo_rows)
     print("cells (warm from the verified neighbour above):")
     stalled = []
     for prob, warm, model in jobs:
