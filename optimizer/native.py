@@ -197,6 +197,11 @@ def integrate(model, t0, y0, t1, *, rtol, atol, max_step=np.inf, events=None) ->
         event_count = np.zeros(len(events))
         g = [ev(t, y) for ev in events]
         t_events, y_events = [[] for _ in events], [[] for _ in events]
+        # event functions with ``many`` are first evaluated at all of a chunk's step ends at once;
+        # only the steps where that shows a zero or a sign change go through scipy's event logic,
+        # on the scalar functions at both ends of the step (as solve_ivp would)
+        quick = all(hasattr(ev, "many") for ev in events)
+        g_last = np.asarray(g, dtype=float)
     else:
         t_events = y_events = None
     ts, ys, pieces = [t], [y], []  # pieces: each step's dense-output data (built into objects lazily)
@@ -210,11 +215,21 @@ def integrate(model, t0, y0, t1, *, rtol, atol, max_step=np.inf, events=None) ->
                                 h_abs, cap, _ptr(T), _ptr(Y), _ptr(F), ctypes.byref(n_out), ctypes.byref(nf_out),
                                 ctypes.byref(h_out), ctypes.byref(t_fail))
         n, nfev, h_abs = n_out.value, nfev + nf_out.value, h_out.value
+        if events and quick and n:
+            ends = np.column_stack([ev.many(T[1:n + 1], Y[1:n + 1]) for ev in events])
+            before = np.vstack([g_last, ends[:-1]])
+            still = ((before > 0) & (ends > 0)) | ((before < 0) & (ends < 0))
+            flagged = ~still.all(axis=1)
+            g_last = ends[-1]
         for k in range(n):
             t_old, t_new, y_old, y_new = float(T[k]), float(T[k + 1]), Y[k], Y[k + 1]
             pieces.append((t_old, t_new, y_old, F[k]))
             t_end, y_end = t_new, y_new
-            if events:
+            if events and quick and not flagged[k]:
+                pass  # no event function changed sign over this step
+            elif events:
+                if quick:  # the scalar values at the step's start (earlier quiet steps skipped them)
+                    g = [ev(t_old, y_old) for ev in events]
                 g_new = [ev(t_new, y_new) for ev in events]
                 # scipy's test needs a zero or a sign change somewhere: skip it when none (exact)
                 changed = any(not ((a > 0 and b > 0) or (a < 0 and b < 0)) for a, b in zip(g, g_new))

@@ -103,19 +103,50 @@ def _length(v) -> float:
     return math.sqrt(float(v @ v))
 
 
+def _rows(body, ts):
+    """A body's position or velocity function at the epochs ``ts`` (N,) as an (N, 3) array (a
+    function that ignores the shape of its epoch argument, such as a fixed Earth, is broadcast)."""
+    v = np.asarray(body(ts), dtype=float)
+    return np.broadcast_to(v.T if v.ndim == 2 else v, (len(ts), 3))
+
+
+def _lengths(d):
+    return np.sqrt(np.einsum("ij,ij->i", d, d))
+
+
 def _closest_approach(position, velocity, within):
     """Event function whose rising zero is a minimum of distance to a body (``position(t)``,
     ``velocity(t)``); with ``within`` (km) ``max(radial speed, distance - within)``, which cannot
-    change sign outside that sphere."""
+    change sign outside that sphere.  Its ``many(ts, ys)`` gives the values at many step ends at
+    once (``ys`` (N, 6)): the C engine's quick test for a sign change between steps."""
     if within is None:
         def f(t, y):
             return float(np.dot(y[:3] - position(t), y[3:] - velocity(t)))
-        return f
 
+        def many(ts, ys):
+            return np.einsum("ij,ij->i", ys[:, :3] - _rows(position, ts), ys[:, 3:] - _rows(velocity, ts))
+    else:
+        def f(t, y):
+            d = y[:3] - position(t)
+            dist = _length(d)
+            return max(float(np.dot(d, y[3:] - velocity(t))) / dist, dist - within)
+
+        def many(ts, ys):
+            d = ys[:, :3] - _rows(position, ts)
+            dist = _lengths(d)
+            return np.maximum(np.einsum("ij,ij->i", d, ys[:, 3:] - _rows(velocity, ts)) / dist, dist - within)
+    f.many = many
+    return f
+
+
+def _crossing(position, radius):
+    """Event function of the distance to a body (``position(t)``) minus ``radius``, with ``many``."""
     def f(t, y):
-        d = y[:3] - position(t)
-        dist = _length(d)
-        return max(float(np.dot(d, y[3:] - velocity(t))) / dist, dist - within)
+        return _length(y[:3] - position(t)) - radius
+
+    def many(ts, ys):
+        return _lengths(ys[:, :3] - _rows(position, ts)) - radius
+    f.many = many
     return f
 
 
@@ -158,17 +189,11 @@ def _event_functions(model, names, entry_radius, terminal, backward=False, peril
         elif name == "entry":
             if entry_radius is None:
                 raise ValueError("the entry event needs entry_radius")
-            def f(t, y):
-                return _length(y[:3] - model.earth_position(t)) - entry_radius
-            add(f, name, -1.0, "entry" in terminal)
+            add(_crossing(model.earth_position, entry_radius), name, -1.0, "entry" in terminal)
         elif name == "impact_earth":
-            def f(t, y):
-                return _length(y[:3] - model.earth_position(t)) - model.earth.radius
-            add(f, name, -1.0, True)
+            add(_crossing(model.earth_position, model.earth.radius), name, -1.0, True)
         elif name == "impact_moon":
-            def f(t, y):
-                return _length(y[:3] - model.moon_position(t)) - model.moon.radius
-            add(f, name, -1.0, True)
+            add(_crossing(model.moon_position, model.moon.radius), name, -1.0, True)
     return funcs, labels
 
 

@@ -130,3 +130,21 @@ def test_other_models_fall_back_to_scipy():
     assert arc.engine == "scipy"
     with pytest.raises(ValueError, match="engine"):
         propagate(TwoBody(), 0.0, [7000.0, 0, 0, 0, 7.5, 0], 3000.0, engine="fortran")
+
+
+def test_sphere_limited_and_crossing_events_match_scipys(fit):
+    """The C engine first evaluates the event functions at all of a chunk's step ends at once and
+    runs scipy's event logic only where a value changed sign; scipy's engine runs it at every step.
+    Both must find the same events, with the sphere-limited perilune and perigee and an entry
+    crossing (on the swing-by, and on a fall through the entry radius onto Earth)."""
+    model = EarthCentred(fit, sun=True, j2=False)
+    kw = dict(events=("perilune", "perigee", "entry", "impact_earth", "impact_moon"), entry_radius=R_EARTH + 121.92,
+              perilune_within=66_000.0, perigee_within=190_000.0)
+    starts = [(T0 - 1.5 * DAY, _swing_by(model), T0 + 3.0 * DAY),
+              (T0, np.array([10_000.0, 0.0, 0.0, 0.0, 0.5, 0.0]), T0 + DAY)]
+    for t0, y0, t1 in starts:
+        fast, ref = (propagate(model, t0, y0, t1, engine=e, **kw) for e in ("c", "scipy"))
+        assert fast.engine == "c" and fast.status == ref.status
+        assert [e.name for e in fast.events] == [e.name for e in ref.events] and fast.events
+        for a, b in zip(fast.events, ref.events):
+            assert abs(a.t - b.t) < 1e-3
