@@ -124,10 +124,7 @@ class AssembledDerivatives:
         g = ca.substitute([g_w], ws, ends)[0]
         jac = self._assemble((ng, nx), jparts)
         p = self.p if parametric else ca.MX.sym("p", 0, 1)
-
-        def fix(*exprs):  # a list, sharing the subexpressions of its members
-            return list(exprs) if parametric else self.fix_parameters(*exprs) if len(exprs) > 1 \
-                else [self.fix_parameters(exprs[0])]
+        fix = (lambda *exprs: list(exprs)) if parametric else self.fix_parameters  # a list of outputs
 
         out = {"jac_g": ca.Function("nlp_jac_g", [x, p], fix(g, jac), ["x", "p"], ["g", "jac_g_x"])}
         if hessian:
