@@ -42,18 +42,12 @@ from ..transcription import Transcription, is_injection
 from ..verify import arrival_record, make_burn, perilune_record, verify
 from .base import SolveError, held_burns, usable_burns
 from .guess import initial_guess, model_span, path_guess, relayout
-from .ipopt import RETRIES, active_caches, constraint_violations, solve_nlp
+from .ipopt import FIRST_PASS, LIGHTER_WEIGHT, RETRIES, active_caches, constraint_violations, solve_nlp
 from .primer import PRIMER_TOL, RELEASE_MPS, primer_scan, release_candidates
 from .search import SKIP_MPS, SKIP_RATIO, global_solve, screened, search_summary
 
 #: Local disagreement (km) between an NLP segment and the propagator above which a coast is refined.
 SEGMENT_TOL_KM = 1e-3
-#: The first IPOPT attempt of a cold start (no multipliers): a limited-memory Hessian, whose
-#: iterations cost a fraction of an exact one's.  Measured on the tuning half of
-#: tests/benchmarks/global_cases.py (33 cases, two at a time): with the limited-memory Hessian in
-#: every attempt, median 5.9 -> 1.7 s and summed time 291 -> 127 s, but one case (seed 0) lost; so
-#: the exact Hessian stays, as the first retry.
-FIRST_PASS = {"ipopt.hessian_approximation": "limited-memory"}
 #: Burns below this size (m/s) after a verified solve are tried at exactly zero.
 PRUNE_MPS = 0.1
 #: IPOPT iteration cap of a global-search start made after a verified plan is in hand (it only
@@ -375,8 +369,8 @@ def _global_search(problem, model, tr, run, stages, t_start):
             cap = min(EXPLORE_MAX_ITER, (run.ipopt_options or {}).get("ipopt.max_iter", EXPLORE_MAX_ITER))
             run_here = run._replace(ipopt_options={**(run.ipopt_options or {}), "ipopt.max_iter": cap},
                                     retries=False)
-        if uphill:  # the first retry's settings (a lighter objective weight) from the same start
-            run_here = run_here._replace(ipopt_options={**(run_here.ipopt_options or {}), **RETRIES[0][1]})
+        if uphill:  # a lighter objective weight from the same start
+            run_here = run_here._replace(ipopt_options={**(run_here.ipopt_options or {}), **LIGHTER_WEIGHT})
         solved = _solve_loop(problem, model, tr, x0, None, run_here, stages, t_start)
         tried.append(solved)
         return solved.plan
@@ -402,8 +396,8 @@ def _solve_loop(problem, model, tr, x0, lam, run, stages, t_start) -> Solved:
     log = []
     for attempt in range(problem.mesh.max_refinements + 1):
         run.say(f"NLP: {tr.v.n} variables, {tr.v.ng} constraints, steps per coast {tr.steps}")
-        # a cold start is solved first with the limited-memory Hessian (FIRST_PASS); the exact
-        # Hessian, then the other settings, are its retries
+        # a cold start is solved first with the limited-memory Hessian (FIRST_PASS); RETRIES
+        # follow it (the exact Hessian first)
         cold = lam is None and "ipopt.hessian_approximation" not in (run.ipopt_options or {})
         sol, rec = solve_nlp(tr, x0, lam, {**(run.ipopt_options or {}), **(FIRST_PASS if cold else {})})
         if cold:
@@ -411,12 +405,14 @@ def _solve_loop(problem, model, tr, x0, lam, run, stages, t_start) -> Solved:
         rec["build_and_solve_s"] = time.perf_counter() - t_start
         log.append(rec)
         tried = [(sol, rec)]
-        for label, retry in ((("the exact Hessian", {}),) + RETRIES[:1] if cold else RETRIES):
+        for label, retry in RETRIES:
             # A cold start that stalls, or that IPOPT declares locally infeasible, is retried: the
             # verdict is about the iterates' neighbourhood.  Measured: the return-trim-only case
             # of tests/test_primer.py is "infeasible" at weight 0.3 and 1, solved at 0.1 and 0.03.
-            if rec["success"] or lam is not None or not run.retries or set(retry) & set(run.ipopt_options or {}):
+            if rec["success"] or lam is not None or not run.retries:
                 break
+            if set(retry) & set(run.ipopt_options or {}):  # the caller chose this setting
+                continue
             run.say(f"IPOPT: {rec['status']} after {rec['iterations']} iterations; retrying with {label}")
             sol, rec = solve_nlp(tr, x0, None, {**(run.ipopt_options or {}), **retry})
             rec["retry"] = label
