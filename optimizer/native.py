@@ -225,9 +225,7 @@ def integrate(model, t0, y0, t1, *, rtol, atol, max_step=np.inf, events=None) ->
             t_old, t_new, y_old, y_new = float(T[k]), float(T[k + 1]), Y[k], Y[k + 1]
             pieces.append((t_old, t_new, y_old, F[k]))
             t_end, y_end = t_new, y_new
-            if events and quick and not flagged[k]:
-                pass  # no event function changed sign over this step
-            elif events:
+            if events and (not quick or flagged[k]):  # quick and not flagged: no value changed sign
                 if quick:  # the scalar values at the step's start (earlier quiet steps skipped them)
                     g = [ev(t_old, y_old) for ev in events]
                 g_new = [ev(t_new, y_new) for ev in events]

@@ -519,12 +519,12 @@ def basins(seeds, limit=MAX_STARTS) -> list[Seed]:
 def global_solve(problem, model, solve_from, say=lambda m: None):
     """Screen, then solve the most promising starts and keep the cheapest verified plan.
 
-    ``solve_from(burns, explore, uphill)`` solves the NLP from the path through ``burns`` [(epoch, dv km/s)
-    per burn of the problem] and returns a Plan (the solver's loop, verification included);
-    ``explore`` is True for a start made after a verified plan was found (the chain gives it a
-    smaller budget); ``uphill`` asks for the chain's other IPOPT settings (see :data:`UPHILL_RATIO`).  Returns (the
-    cheapest verified Plan or None, the record of every seed and start); None also when no seed met
-    the ranges (the caller falls back on its own guess).
+    ``solve_from(burns, explore, uphill)`` solves the NLP from the path through ``burns``
+    [(epoch, dv km/s) per burn of the problem] and returns a Plan (the solver's loop, verification
+    included); ``explore`` is True for a start made after a verified plan was found (the chain
+    gives it a smaller budget); ``uphill`` asks for the chain's other IPOPT settings (see
+    :data:`UPHILL_RATIO`).  Returns (the cheapest verified Plan or None, the record of every seed
+    and start); None also when no seed met the ranges (the caller falls back on its own guess).
     """
     t_start = time.perf_counter()
     seeds, t_peri = screened(problem, model, say)
@@ -583,7 +583,8 @@ def _start(record, seed, solve_from, burns, **how):
         return None
     record["starts"].append({**entry, "status": plan.status, "total_dv_mps": plan.total_dv_mps,
                              "burn_epochs_tdb_s": [b.epoch for b in plan.burns],
-                             "iterations": plan.solver.get("iterations"), "wall_s": round(time.perf_counter() - t0, 3)})
+                             "iterations": plan.solver.get("iterations"),
+                             "wall_s": round(time.perf_counter() - t0, 3)})
     return plan
 
 

@@ -62,8 +62,8 @@ FALLBACK_CAP_SHARE = 1.0
 #: the demo-trade grid, each warm-started from its verified neighbour): a feasible cell whose
 #: limited-memory attempt stalled ended at 8.4e-7 and the exact attempt then verified it; cells
 #: with no solution (arrival too early for the perilune range) ended at 0.15 to 5.0, and 100 more
-#: exact iterations never verified one.  Below this, the exact attempt runs; above, the cell fails fast (a retry from
-#: another verified neighbour may still solve it).
+#: exact iterations never verified one.  Below this, the exact attempt runs; above, the cell fails
+#: fast (a retry from another verified neighbour may still solve it).
 FALLBACK_MAX_INFEASIBILITY = 1e-3
 
 #: The resume folder of a sweep: ``sweep.json`` names the sweep, ``cells/<label>.json`` one cell
