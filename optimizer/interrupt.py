@@ -22,10 +22,13 @@ import sys
 import threading
 from contextlib import contextmanager
 
-__all__ = ["honour_ctrl_c", "pressed"]
+__all__ = ["honour_ctrl_c", "pressed", "WATCHER_NAME"]
 
 #: Seconds between repeated interrupts of the main thread after Ctrl-C.
 REPEAT_S = 0.2
+#: The watcher thread's name.  It holds no lock while it waits in ``select``, so a process may
+#: fork beside it (the global search's starts do); the child has no watcher.
+WATCHER_NAME = "slingback-ctrl-c"
 
 
 @contextmanager
@@ -62,7 +65,7 @@ def honour_ctrl_c():
                         _thread.interrupt_main()
                 return
 
-    watcher = threading.Thread(target=watch, name="slingback-ctrl-c", daemon=True)
+    watcher = threading.Thread(target=watch, name=WATCHER_NAME, daemon=True)
     previous = _UNSET = object()
     try:
         with _held_back() as held:

@@ -13,6 +13,7 @@ import os
 import signal
 import subprocess
 import sys
+import time
 import types
 from pathlib import Path
 
@@ -243,6 +244,47 @@ def test_ctrl_c_during_solve_exits_130_with_one_line_and_writes_nothing(tmp_path
     assert lines[-1] == "slingback: interrupted (Ctrl-C); solve stopped, nothing written"
     assert "Traceback" not in err
     assert list(tmp_path.iterdir()) == []
+
+
+def test_ctrl_c_while_starts_run_at_once_exits_130_and_leaves_no_process(tmp_path):
+    """Ctrl-C from a terminal reaches the whole foreground process group: the command and the
+    global search's forked starts (SLINGBACK_START_WORKERS=2; the demo makes two starts).  Sent
+    once the command has a child that is a copy of itself (a start's process; not a compiler):
+    exit 130, one line, nothing written, and no process of the group left behind."""
+    out = tmp_path / "run"
+    p = subprocess.Popen([sys.executable, "-m", "optimizer.cli", "solve", str(ROOT / "problems/demo-abort.toml"),
+                          "--out", str(out)], cwd=tmp_path,
+                         env={**os.environ, "PYTHONPATH": str(ROOT), "SLINGBACK_START_WORKERS": "2"},
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                         preexec_fn=ctrl_c_as_from_a_terminal, start_new_session=True)
+    def starts():  # Linux lists a process's children; a forked start runs the command's own line
+        try:
+            kids = Path(f"/proc/{p.pid}/task/{p.pid}/children").read_text().split()
+            return [k for k in kids if b"optimizer.cli" in Path(f"/proc/{k}/cmdline").read_bytes()]
+        except OSError:  # the command or the child has just ended
+            return []
+
+    for _ in range(1200):
+        if p.poll() is not None or starts():
+            break
+        time.sleep(0.05)
+    seen = starts()
+    assert seen, "no start was made in another process"
+    os.killpg(p.pid, signal.SIGINT)
+    rest, err = p.communicate(timeout=120)
+    lines = (err or "").strip().splitlines()
+    assert p.returncode == 130, seen + lines
+    assert lines[-1] == "slingback: interrupted (Ctrl-C); solve stopped, nothing written"
+    assert "Traceback" not in err
+    assert list(tmp_path.iterdir()) == []
+    for _ in range(50):  # the group's processes are gone (a terminated child may take a moment)
+        try:
+            os.killpg(p.pid, 0)
+        except ProcessLookupError:
+            break
+        time.sleep(0.1)
+    else:
+        raise AssertionError("a process of the command's group outlived it")
 
 
 # Modules the command imports in turn: its own start (handler installed before them), main()

@@ -21,13 +21,18 @@ of Earth, the Moon passed on either side).  This module:
 
 Every seed and start is recorded (``plan.solver["search"]``) so the report can show the landscape.
 
-May import: constants, problem, models, propagate, events.  Never the wing's ``guess``, ``ipopt`` or
+May import: constants, problem, models, propagate, events, interrupt.  Never the wing's ``guess``, ``ipopt`` or
 ``strategy``: the chain calls :func:`global_solve` with a ``solve_from`` function of its own.
 """
 
 from __future__ import annotations
 
 import math
+import multiprocessing
+import os
+import signal
+import sys
+import threading
 import time
 from dataclasses import dataclass
 
@@ -35,6 +40,7 @@ import numpy as np
 
 from ..constants import SECONDS_PER_DAY
 from ..events import RETURN_RADIUS_KM, encounter_radius
+from ..interrupt import WATCHER_NAME
 from ..propagate import propagate
 
 #: Seed epochs per burn window (both ends included).
@@ -516,75 +522,215 @@ def basins(seeds, limit=MAX_STARTS) -> list[Seed]:
 
 
 # -- the global solve -------------------------------------------------------------------------------
-def global_solve(problem, model, solve_from, say=lambda m: None):
+def start_workers() -> int:
+    """How many IPOPT starts :func:`global_solve` runs at once: ``$SLINGBACK_START_WORKERS`` if
+    set, else one per core up to :data:`MAX_STARTS`.  Starts run in forked processes (IPOPT and
+    its linear solver are not thread-safe), so only where forking is sound: on Linux, in the main
+    thread of a process that runs no other Python thread (but the command's Ctrl-C watcher,
+    :data:`~optimizer.interrupt.WATCHER_NAME`, which holds no lock) and is not itself a worker
+    process (a trade study's or dispersion run's workers already use the cores).  Anywhere else: 1."""
+    text = os.environ.get("SLINGBACK_START_WORKERS", "").strip()
+    if text:
+        try:
+            n = int(text)
+        except ValueError:
+            n = 0
+        if n < 1:
+            raise ValueError(f"SLINGBACK_START_WORKERS={text!r}: expected a whole number of at least 1")
+    else:
+        n = min(MAX_STARTS, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1)
+    main = threading.main_thread()
+    alone = all(t is main or t.name == WATCHER_NAME for t in threading.enumerate())
+    forkable = (sys.platform.startswith("linux") and multiprocessing.parent_process() is None
+                and threading.current_thread() is main and alone)
+    return n if forkable else 1
+
+
+def global_solve(problem, model, solve_from, say=lambda m: None, workers=1):
     """Screen, then solve the most promising starts and keep the cheapest verified plan.
 
-    ``solve_from(burns, explore, uphill)`` solves the NLP from the path through ``burns``
+    ``solve_from(burns, explore=, uphill=, say=)`` solves the NLP from the path through ``burns``
     [(epoch, dv km/s) per burn of the problem] and returns a Plan (the solver's loop, verification
-    included); ``explore`` is True for a start made after a verified plan was found (the chain
-    gives it a smaller budget); ``uphill`` asks for the chain's other IPOPT settings (see
-    :data:`UPHILL_RATIO`).  Returns (the cheapest verified Plan or None, the record of every seed
-    and start); None also when no seed met the ranges (the caller falls back on its own guess).
+    included), its progress lines going to ``say``; ``explore`` is True for a start made after a
+    verified plan was found (the chain gives it a smaller budget); ``uphill`` asks for the chain's
+    other IPOPT settings (see :data:`UPHILL_RATIO`).
+
+    The starts are the cheapest :data:`MAX_STARTS` distinct basins (:func:`basins`), taken in
+    order: a start is made only if its screened Δv is at most :data:`SKIP_RATIO` x the cheapest
+    verified Δv of the starts before it + :data:`SKIP_MPS`, and explores once one of them
+    verified.  With ``workers`` > 1 the later starts are begun early, in forked processes
+    (:class:`_Ahead`), on the guess that an earlier start verifies; a guess that proves wrong
+    (no verified plan before it, or a start the rule skips) is thrown away and the start made
+    again as the rule says.  So every start is made with the same settings, and the answer and
+    the record are the same, whatever ``workers`` is.
+
+    Returns (the cheapest verified Plan or None, the record of every seed and start, the last
+    plan any start returned or None); the record's ``"chosen"`` indexes the start of the answer.
+    None also when no seed met the ranges (the caller falls back on its own guess).
     """
     t_start = time.perf_counter()
     seeds, t_peri = screened(problem, model, say)
     screen_s = time.perf_counter() - t_start
-    candidates = basins(seeds)
     record = {"seeds": [s.record() for s in seeds], "starts": [], "screen_s": round(screen_s, 3),
               "ballistic_perilune_tdb_s": t_peri}
-    if not candidates:
-        return None, record
-    best, tried_epochs = None, []
-    for s in candidates:
-        if len(tried_epochs) >= MAX_STARTS:
-            break
-        if best is not None and s.dv_mps > SKIP_RATIO * best.total_dv_mps + SKIP_MPS:
-            break
-        if any(b == s.burn and f == s.family and abs(t - s.epoch) < 1.0 for b, f, t in tried_epochs):
-            continue
-        tried_epochs.append((s.burn, s.family, s.epoch))
+    picked = []  # distinct starts (a repeat of a start's burn, family and epoch is skipped)
+    for s in basins(seeds):
+        if len(picked) < MAX_STARTS and not any(
+                p.burn == s.burn and p.family == s.family and abs(p.epoch - s.epoch) < 1.0 for p in picked):
+            picked.append(s)
+
+    def job(k, explore, say):
+        """Start ``k`` and, if it went uphill, its second solve: (plan, start records, index of
+        the plan's record among them); plan None when the seed gave no starting point."""
+        s, entries = picked[k], []
         # the seed's burn at its epoch (inside its window by construction); the others at zero in
         # their windows' middle
         burns = [(s.epoch, s.dv) if j == s.burn else (0.5 * sum(b.window), np.zeros(3))
                  for j, b in enumerate(problem.burns)]
-        say(f"search: start {len(tried_epochs)} from burn {s.burn + 1} at "
+        say(f"search: start {k + 1} from burn {s.burn + 1} at "
             f"{(s.epoch - problem.start.epoch) / HOUR:.1f} h ({s.family}), screened {s.dv_mps:.3f} m/s")
-        plan = _start(record, s, solve_from, burns, explore=best is not None)
-        if plan is None:
-            continue
-        index = len(record["starts"]) - 1
-        if plan.verified and plan.total_dv_mps > UPHILL_RATIO * s.dv_mps + SKIP_MPS:
+        plan = _start(entries, s, solve_from, burns, say, explore=explore)
+        chosen = len(entries) - 1
+        if plan is not None and plan.verified and plan.total_dv_mps > UPHILL_RATIO * s.dv_mps + SKIP_MPS:
             # the NLP ended far above the screened cost of the point it started from, which already
             # met the ranges: it went uphill into another basin.  Once more from the same start with
             # the chain's other settings; the cheaper verified plan counts.
-            say(f"search: start {len(tried_epochs)} ended at {plan.total_dv_mps:.3f} m/s, over "
+            say(f"search: start {k + 1} ended at {plan.total_dv_mps:.3f} m/s, over "
                 f"{UPHILL_RATIO:g} x its screened {s.dv_mps:.3f} m/s + {SKIP_MPS:g}: solving it again with "
                 "other settings")
-            again = _start(record, s, solve_from, burns, explore=best is not None, uphill=True)
+            again = _start(entries, s, solve_from, burns, say, explore=explore, uphill=True)
             if again is not None and again.verified and again.total_dv_mps < plan.total_dv_mps:
-                plan, index = again, len(record["starts"]) - 1
-        if plan.verified and (best is None or plan.total_dv_mps < best.total_dv_mps - 1e-6):
-            best = plan
-            record["chosen"] = index
+                plan, chosen = again, len(entries) - 1
+        return plan, entries, chosen
+
+    best, last = None, None
+    # a later start is begun early only if the rule would make it after a verified plan as cheap
+    # as the first start's screen (verified answers are normally at or a little below it)
+    hopeful = [k for k, s in enumerate(picked) if s.dv_mps <= SKIP_RATIO * picked[0].dv_mps + SKIP_MPS]
+    ahead = _Ahead(job, len(hopeful), workers) if workers > 1 and len(hopeful) > 1 else None
+    try:
+        for k, s in enumerate(picked):
+            if best is not None and s.dv_mps > SKIP_RATIO * best.total_dv_mps + SKIP_MPS:
+                break
+            explore = best is not None
+            if ahead is not None:
+                plan, entries, chosen, lines = ahead.take(k, explore)
+                for line in lines:
+                    say(line)
+            else:
+                plan, entries, chosen = job(k, explore, say)
+            offset = len(record["starts"])
+            record["starts"].extend(entries)
+            last = plan if plan is not None else last
+            if plan is not None and plan.verified and (best is None or plan.total_dv_mps < best.total_dv_mps - 1e-6):
+                best = plan
+                record["chosen"] = offset + chosen
+    finally:
+        if ahead is not None:
+            ahead.close()
     record["search_s"] = round(time.perf_counter() - t_start, 3)
-    return best, record
+    record["start_workers"] = workers if ahead is not None else 1
+    return best, record, last
 
 
-def _start(record, seed, solve_from, burns, **how):
-    """One NLP start from ``seed`` (``how``: ``solve_from``'s flags), recorded in ``record``;
-    returns its plan, or None when the seed gave no starting point."""
+class _Ahead:
+    """Starts ``0 .. n-1`` run in forked processes, up to ``workers`` at once, begun in order:
+    start ``k`` > 0 as the rule would make it if an earlier start verified (exploring).
+    :meth:`take` returns it, or makes it in this process when it was not begun (past ``n``), the
+    rule says otherwise (no verified plan yet) or its process failed.  A process's progress lines
+    come back with its result and are said then, in the order of the starts."""
+
+    def __init__(self, job, n, workers):
+        self.job, self.n, self.workers = job, n, workers
+        self.running = {}  # k -> (process, pipe end, whether it explores)
+        self.next = 0
+        self.context = multiprocessing.get_context("fork")
+        self._fill()
+
+    def _fill(self):
+        while self.next < self.n and len(self.running) < self.workers:
+            k = self.next
+            self.next += 1
+            # start 0 has no earlier start: it is made as the rule makes it (not exploring)
+            self.running[k] = self._fork(k, explore=k > 0)
+
+    def _fork(self, k, explore):
+        receive, send = self.context.Pipe(duplex=False)
+        job = self.job
+
+        def body():
+            receive.close()
+            # Ctrl-C is the parent's to handle (it ends this process): no wake-up byte into the
+            # parent's Ctrl-C watcher's pipe, and no KeyboardInterrupt half-way through a solve
+            signal.set_wakeup_fd(-1)
+            if signal.getsignal(signal.SIGINT) is signal.default_int_handler:
+                signal.signal(signal.SIGINT, signal.SIG_DFL)
+            lines = []
+            try:
+                payload = ("ok", job(k, explore, lines.append), lines)
+            except BaseException as exc:  # the start is made again in the parent, which says it
+                payload = ("error", f"{type(exc).__name__}: {exc}", lines)
+            try:
+                send.send(payload)
+            except Exception as exc:  # noqa: BLE001 - an answer that cannot be pickled
+                send.send(("error", f"the start's result could not be sent back: {exc}", lines))
+            send.close()
+
+        process = self.context.Process(target=body, daemon=True, name=f"slingback-start-{k + 1}")
+        process.start()
+        send.close()
+        return process, receive, explore
+
+    def take(self, k, explore):
+        """Start ``k`` made with ``explore``: (plan, records, chosen, progress lines)."""
+        process, receive, guessed = self.running.pop(k, (None, None, None))
+        out = None
+        if process is not None and guessed == explore:
+            try:
+                status, result, lines = receive.recv()
+                if status == "ok":
+                    out = (*result, lines)
+            except EOFError:  # the process died without an answer (killed, out of memory)
+                pass
+        if process is not None:
+            self._end(process, receive)
+        self._fill()
+        if out is None:  # not begun, begun on a wrong guess, or failed there: made here
+            lines = []
+            out = (*self.job(k, explore, lines.append), lines)
+        return out
+
+    @staticmethod
+    def _end(process, receive):
+        receive.close()
+        if process.is_alive():
+            process.terminate()
+        process.join(5.0)
+        if process.is_alive():
+            process.kill()
+            process.join()
+
+    def close(self):
+        for process, receive, _ in self.running.values():
+            self._end(process, receive)
+        self.running.clear()
+
+
+def _start(record, seed, solve_from, burns, say, **how):
+    """One NLP start from ``seed`` (``how``: ``solve_from``'s flags), recorded in the list
+    ``record``; returns its plan, or None when the seed gave no starting point."""
     t0 = time.perf_counter()
     entry = {**seed.record(), **{k: True for k, v in how.items() if v}}
     try:
-        plan = solve_from(burns, **how)
+        plan = solve_from(burns, say=say, **how)
     except ValueError as exc:  # SolveError: no starting point from this seed
-        record["starts"].append({**entry, "status": "no starting point", "reason": str(exc),
-                                 "wall_s": round(time.perf_counter() - t0, 3)})
+        record.append({**entry, "status": "no starting point", "reason": str(exc),
+                       "wall_s": round(time.perf_counter() - t0, 3)})
         return None
-    record["starts"].append({**entry, "status": plan.status, "total_dv_mps": plan.total_dv_mps,
-                             "burn_epochs_tdb_s": [b.epoch for b in plan.burns],
-                             "iterations": plan.solver.get("iterations"),
-                             "wall_s": round(time.perf_counter() - t0, 3)})
+    record.append({**entry, "status": plan.status, "total_dv_mps": plan.total_dv_mps,
+                   "burn_epochs_tdb_s": [b.epoch for b in plan.burns],
+                   "iterations": plan.solver.get("iterations"),
+                   "wall_s": round(time.perf_counter() - t0, 3)})
     return plan
 
 
@@ -612,4 +758,4 @@ def search_summary(record) -> str:
     return text
 
 
-__all__ = ["Seed", "target", "screen", "basins", "global_solve", "seed_epochs", "ballistic_path"]
+__all__ = ["Seed", "target", "screen", "basins", "global_solve", "start_workers", "seed_epochs", "ballistic_path"]

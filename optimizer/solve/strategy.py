@@ -44,7 +44,7 @@ from .base import SolveError, held_burns, usable_burns
 from .guess import initial_guess, model_span, path_guess, relayout
 from .ipopt import FIRST_PASS, LIGHTER_WEIGHT, RETRIES, active_caches, constraint_violations, solve_nlp
 from .primer import PRIMER_TOL, RELEASE_MPS, primer_scan, release_candidates
-from .search import SKIP_MPS, SKIP_RATIO, global_solve, screened, search_summary
+from .search import SKIP_MPS, SKIP_RATIO, global_solve, screened, search_summary, start_workers
 
 #: Local disagreement (km) between an NLP segment and the propagator above which a coast is refined.
 SEGMENT_TOL_KM = 1e-3
@@ -356,30 +356,42 @@ def _continuation(problem, run):
 
 def _global_search(problem, model, tr, run, stages, t_start):
     """The global layer (:mod:`optimizer.solve.search`): screened seeds over every burn window, the most
-    promising solved from their own paths.  Returns (the cheapest verified plan, else the last
-    plan tried, else None, with its transcription; the search record), the record also under
-    ``plan.solver["search"]``."""
+    promising solved from their own paths, at once on the local cores where that is sound
+    (:func:`~optimizer.solve.search.start_workers`).  Returns (the cheapest verified plan, else
+    the last plan tried, else None, with its transcription; the search record), the record also
+    under ``plan.solver["search"]``."""
     st = problem.start
     tried = []
 
-    def solve_from(burns, explore=False, uphill=False):
+    def solve_from(burns, explore=False, uphill=False, say=None):
         x0 = path_guess(problem, model, tr, st.epoch, np.asarray(st.state, dtype=float), burns)
-        run_here = run
+        run_here = run if say is None else run._replace(say=say)
         if explore:  # a verified plan is in hand: this start only looks for a cheaper basin
             cap = min(EXPLORE_MAX_ITER, (run.ipopt_options or {}).get("ipopt.max_iter", EXPLORE_MAX_ITER))
-            run_here = run._replace(ipopt_options={**(run.ipopt_options or {}), "ipopt.max_iter": cap},
-                                    retries=False)
+            run_here = run_here._replace(ipopt_options={**(run.ipopt_options or {}), "ipopt.max_iter": cap},
+                                         retries=False)
         if uphill:  # a lighter objective weight from the same start
             run_here = run_here._replace(ipopt_options={**(run_here.ipopt_options or {}), **LIGHTER_WEIGHT})
         solved = _solve_loop(problem, model, tr, x0, None, run_here, stages, t_start)
         tried.append(solved)
         return solved.plan
 
-    best, record = global_solve(problem, model, solve_from, run.say)
-    found = next((t for t in tried if t.plan is best), None) if best is not None else (tried[-1] if tried else None)
-    if found is not None:
-        found.plan.solver["search"] = record
+    best, record, last = global_solve(problem, model, solve_from, run.say, workers=start_workers())
+    plan = best if best is not None else last
+    if plan is None:
+        return None, record
+    # a start made in another process left no transcription here: the same one is built again
+    found = next((t for t in tried if t.plan is plan), None) or Solved(plan, _transcription_of(problem, model, plan))
+    found.plan.solver["search"] = record
     return found, record
+
+
+def _transcription_of(problem, model, plan) -> Transcription:
+    """The transcription ``plan``'s warm-start point belongs to: the problem's own on the plan's
+    mesh, or that of the problem with its pruned burns fixed at zero (:func:`_prune`)."""
+    zeroed = [j - 1 for j in plan.solver.get("zeroed_burns", [])]
+    return Transcription(_zeroed(problem, plan, zeroed) if zeroed else problem, model,
+                         list(plan.warm["steps"]), plan.warm["segments"])
 
 
 def _with_search_reason(plan, record):
@@ -471,8 +483,7 @@ def _prune(problem, solved: Solved, model, run) -> Solved:
     if not small:
         return solved
     # the epoch of a zero burn is fixed where it is: free, its cut could slide (a degenerate direction)
-    zeroed = replace(problem, burns=tuple(replace(b, max_dv_mps=0.0, window=(plan.burns[j].epoch,) * 2)
-                                          if j in small else b for j, b in enumerate(problem.burns)))
+    zeroed = _zeroed(problem, plan, small)
     run.say(f"re-solving with burn(s) {', '.join(str(j + 1) for j in small)} (under {PRUNE_MPS} m/s) fixed at zero")
     trial = _design(zeroed, plan, model, run)
     if not (trial.plan.verified and trial.plan.total_dv_mps < plan.total_dv_mps):
@@ -484,6 +495,12 @@ def _prune(problem, solved: Solved, model, run) -> Solved:
 
 
 # -- helpers of the chain -------------------------------------------------------------------------
+def _zeroed(problem, plan, small):
+    """``problem`` with burns ``small`` (indices) fixed at zero at ``plan``'s epochs."""
+    return replace(problem, burns=tuple(replace(b, max_dv_mps=0.0, window=(plan.burns[j].epoch,) * 2)
+                                       if j in small else b for j, b in enumerate(problem.burns)))
+
+
 def _cheapest_screened(problem, model) -> float | None:
     """Δv (m/s) of the cheapest seed of ``problem`` the global layer's screen finds inside its
     caps, None when there is none, 0 for a parking-orbit start (not screened: always solved).  The
