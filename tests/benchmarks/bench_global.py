@@ -69,10 +69,13 @@ def _solve_worker(job):
         status, reason, dv = plan.status, plan.reason, float(plan.total_dv_mps)
         epochs = ";".join(f"{(b.epoch - case.problem.start.epoch) / 3600:.2f}" for b in plan.burns)
         sizes = ";".join(f"{b.dv_mps:.4f}" for b in plan.burns)
+        at_once = (plan.solver.get("search") or {}).get("start_workers")
     except Exception as exc:  # a crash is a failure of the case, recorded, not the end of the run
         status, reason, dv, epochs, sizes = "exception", f"{type(exc).__name__}: {exc}", np.nan, "", ""
+        at_once = None
     return case.seed, {"status": status, "dv_mps": dv, "total_s": time.perf_counter() - t,
                        "burn_epochs_h": epochs, "burn_mps": sizes, "reason": str(reason)[:120],
+                       "start_workers": at_once,
                        "load1": os.getloadavg()[0]}
 
 
@@ -178,7 +181,8 @@ def _row(case, refs, r):
     row = {**case.row(), **{k: r[k] for k in ("status", "dv_mps")},
            "reference_mps": reference, "scan_mps": ref.get("best_scan_mps"),
            "ratio": r["dv_mps"] / reference if reference and reference > 0 else np.nan,
-           **{k: r[k] for k in ("total_s", "burn_epochs_h", "burn_mps", "load1", "reason")}}
+           **{k: r[k] for k in ("total_s", "burn_epochs_h", "burn_mps", "load1", "reason")},
+           "start_workers": r.get("start_workers")}
     row["scan_mps"] = np.nan if row["scan_mps"] is None else row["scan_mps"]
     ok = r["status"] == "verified"
     row["within"] = bool(ok and r["dv_mps"] <= reference * (1 + WITHIN_REL) + WITHIN_ABS)
@@ -208,6 +212,10 @@ def summarise(df, wall):
           f"max {df.total_s.max():.1f} s; run wall {wall:.0f} s")
     print(f"load average during the run: mean {df.load1.mean():.2f}, max {df.load1.max():.2f} "
           f"(1-minute, {os.cpu_count()} cores; now {os.getloadavg()[0]:.2f})")
+    if "start_workers" in df:
+        counts = df.start_workers.value_counts(dropna=False).sort_index()
+        print("IPOPT starts at once (the search's start_workers; 1 also when a case made one start): "
+              + ", ".join(f"{k}: {n} case(s)" for k, n in counts.items()))
     good = df[df.status == "verified"]
     if len(good):
         print(f"Δv / reference of verified cases: median {good.ratio.median():.4f}, max {good.ratio.max():.4f}")
