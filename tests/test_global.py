@@ -88,10 +88,10 @@ def test_early_planted_burn_bounds_an_entry_answer(model, natural):
 
 def test_a_real_search_makes_the_same_starts_and_plan_with_starts_at_once(model, natural, monkeypatch):
     """The early planted case with every screened seed a start (the three cheapest), made one
-    after another and then at once in forked processes: the same starts, iterations and plan, and
-    the transcription rebuilt for a plan made in another process fits its warm-start point."""
-    from optimizer.solve import search
-    from optimizer.solve.strategy import solve_with_transcription
+    after another and then at once in forked processes: the same starts, iterations and plan; the
+    chosen plan was made in another process, and the transcription rebuilt for it here has the
+    bounds of the one the plan was solved in (the run made in this process)."""
+    from optimizer.solve import search, strategy
 
     monkeypatch.setattr(search, "basins", lambda seeds, limit=search.MAX_STARTS: sorted(
         (s for s in seeds if s.dv is not None), key=lambda s: s.dv_mps)[:limit])
@@ -103,15 +103,21 @@ def test_a_real_search_makes_the_same_starts_and_plan_with_starts_at_once(model,
                       arrival=ReturnSpec(flight_path_deg=(gamma - 0.5, gamma + 0.5)),
                       model=ModelSpec(kind="earth-moon"))
     runs = {}
-    for workers in ("1", "2"):
-        monkeypatch.setenv("SLINGBACK_START_WORKERS", workers)
-        plan, tr = solve_with_transcription(problem, model=model)
+    for workers in (1, 2):
+        monkeypatch.setattr(strategy, "start_workers", lambda n=workers: n)
+        plan, tr = strategy.solve_with_transcription(problem, model=model)
         record = plan.solver["search"]
-        runs[workers] = (plan.total_dv_mps, record.get("chosen"), record["start_workers"],
-                         [(s["status"], s["total_dv_mps"], s["iterations"], s.get("explore")) for s in record["starts"]])
-        assert plan.verified and tr.v.n == len(plan.warm["x"]) and tr.steps == plan.warm["steps"]
-    assert len(runs["1"][3]) == 3 and runs["2"][2] == 2 and runs["1"][2] == 1
-    assert runs["1"][:2] == runs["2"][:2] and runs["1"][3] == runs["2"][3]
+        runs[workers] = (plan, tr, record)
+        assert plan.verified and record["start_workers"] == workers
+    (p1, tr1, r1), (p2, tr2, r2) = runs[1], runs[2]
+    fields = ("status", "total_dv_mps", "iterations", "explore", "uphill", "burn_epochs_tdb_s")
+    assert len(r1["starts"]) == 3
+    assert [[s.get(f) for f in fields] for s in r1["starts"]] == [[s.get(f) for f in fields] for s in r2["starts"]]
+    assert r1["chosen"] == r2["chosen"] and p1.total_dv_mps == p2.total_dv_mps
+    assert r2["starts"][r2["chosen"]].get("process") == "forked" and "process" not in r1["starts"][r1["chosen"]]
+    assert tr2 is not tr1 and tr2.steps == tr1.steps
+    assert np.array_equal(tr2.lbx, tr1.lbx) and np.array_equal(tr2.ubx, tr1.ubx)
+    assert np.array_equal(tr2.lbg, tr1.lbg) and np.array_equal(tr2.ubg, tr1.ubg)
 
 
 def test_targeting_converges_from_a_steep_ballistic_return(model, natural):

@@ -30,6 +30,7 @@ from __future__ import annotations
 import math
 import multiprocessing
 import os
+import pickle
 import signal
 import sys
 import threading
@@ -607,8 +608,10 @@ def global_solve(problem, model, solve_from, say=lambda m: None, workers=1):
     # a later start is begun early only if the rule would make it after a verified plan as cheap
     # as the first start's screen (verified answers are normally at or a little below it)
     hopeful = [k for k, s in enumerate(picked) if s.dv_mps <= SKIP_RATIO * picked[0].dv_mps + SKIP_MPS]
-    ahead = _Ahead(job, len(hopeful), workers) if workers > 1 and len(hopeful) > 1 else None
+    ahead = None
     try:
+        if workers > 1 and len(hopeful) > 1:
+            ahead = _Ahead(job, len(hopeful), workers, say)
         for k, s in enumerate(picked):
             if best is not None and s.dv_mps > SKIP_RATIO * best.total_dv_mps + SKIP_MPS:
                 break
@@ -633,87 +636,166 @@ def global_solve(problem, model, solve_from, say=lambda m: None, workers=1):
     return best, record, last
 
 
+class _Child:
+    """``fn()`` run in a forked copy of this process, its result pickled back through a pipe:
+    :meth:`result` -> ("ok", value) or ("error", why).
+
+    Ctrl-C: SIGINT is blocked in this thread around the fork, so the copy starts with it blocked;
+    the copy then writes no wake-up byte into the parent's Ctrl-C watcher's pipe, takes the
+    default action on SIGINT (it ends quietly; the parent reports) and is killed when the parent
+    ends (``PR_SET_PDEATHSIG``: a command that leaves through ``os._exit`` runs no clean-up).  An
+    interrupt raised in the copy before it is set up (the parent's watcher may have left one
+    pending on the forking thread) ends it quietly too.  The copy never returns into the caller's
+    code and always leaves through ``os._exit``."""
+
+    def __init__(self, fn):
+        self.pid, self.exitcode = None, None
+        parent = os.getpid()
+        # plain descriptors, no objects with finalisers: the command's Ctrl-C watcher repeats its
+        # interrupt, and one landing in a finaliser would be printed as "Exception ignored"
+        self.fd, send = os.pipe()
+        old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+        try:
+            try:
+                pid = os.fork()
+                if pid == 0:
+                    _child_main(fn, parent, old, self.fd, send)
+            except BaseException:
+                if os.getpid() != parent:  # in the copy, before it was set up
+                    os._exit(1)
+                raise
+            self.pid = pid
+        finally:
+            signal.pthread_sigmask(signal.SIG_SETMASK, old)
+            os.close(send)
+
+    def result(self):
+        chunks = []
+        while True:
+            chunk = os.read(self.fd, 1 << 20)
+            if not chunk:
+                break
+            chunks.append(chunk)
+        if not chunks:  # the process died without an answer (killed, out of memory)
+            self.end()
+            return "error", f"its process ended (exit status {self.exitcode})"
+        return pickle.loads(b"".join(chunks))
+
+    def end(self):
+        """Close the pipe, stop the process if it still runs, and reap it."""
+        if self.fd is not None:  # forgotten first: a repeat after an interrupt never closes twice
+            fd, self.fd = self.fd, None
+            os.close(fd)
+        if self.pid is None or self.exitcode is not None:
+            return
+        try:
+            os.kill(self.pid, signal.SIGTERM)
+            _, status = os.waitpid(self.pid, 0)
+            self.exitcode = os.waitstatus_to_exitcode(status)
+        except (ProcessLookupError, ChildProcessError):  # reaped by an earlier call an interrupt cut
+            self.exitcode = "unknown"                     # short before it noted the status
+
+
+def _child_main(fn, parent, mask, receive, send):
+    code = 1
+    try:
+        os.close(receive)
+        try:  # killed when the parent ends (Linux), and ended now if it already has
+            import ctypes
+
+            ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL), 0, 0, 0)  # PR_SET_PDEATHSIG
+        except (OSError, AttributeError):
+            pass
+        if os.getppid() != parent:
+            os._exit(1)
+        signal.set_wakeup_fd(-1)
+        if signal.getsignal(signal.SIGINT) is signal.default_int_handler:
+            signal.signal(signal.SIGINT, signal.SIG_DFL)
+        signal.pthread_sigmask(signal.SIG_SETMASK, mask)
+        try:
+            payload = ("ok", fn())
+        except BaseException as exc:  # noqa: BLE001 - the parent makes the start again
+            payload = ("error", f"{type(exc).__name__}: {exc}")
+        try:
+            data = pickle.dumps(payload)
+        except Exception as exc:  # noqa: BLE001 - an answer that cannot be pickled
+            data = pickle.dumps(("error", f"its result could not be sent back ({exc})"))
+        try:
+            view = memoryview(data)
+            while view:
+                view = view[os.write(send, view):]
+            code = 0
+        except OSError:  # the parent no longer listens (it ended or gave this start up)
+            pass
+    finally:
+        os._exit(code)
+
+
 class _Ahead:
-    """Starts ``0 .. n-1`` run in forked processes, up to ``workers`` at once, begun in order:
-    start ``k`` > 0 as the rule would make it if an earlier start verified (exploring).
-    :meth:`take` returns it, or makes it in this process when it was not begun (past ``n``), the
-    rule says otherwise (no verified plan yet) or its process failed.  A process's progress lines
-    come back with its result and are said then, in the order of the starts."""
+    """Starts ``0 .. n-1`` run in forked processes (:class:`_Child`), up to ``workers`` at once
+    (one fewer while this process makes a start itself), begun in order: start ``k`` > 0 as the
+    rule would make it if an earlier start verified (exploring).  :meth:`take` returns it, or
+    makes it in this process when it was not begun (past ``n``, or the fork failed), the rule
+    says otherwise (no verified plan yet) or its process failed (said on ``say``).  A process's
+    progress lines come back with its result and are said then, in the order of the starts; each
+    start record made in another process says so (``"process": "forked"``).  :meth:`close` ends
+    every process still running, also when interrupted while it does."""
 
-    def __init__(self, job, n, workers):
-        self.job, self.n, self.workers = job, n, workers
-        self.running = {}  # k -> (process, pipe end, whether it explores)
+    def __init__(self, job, n, workers, say):
+        self.job, self.n, self.workers, self.say = job, n, workers, say
+        self.running = {}  # k -> (child, whether it explores)
         self.next = 0
-        self.context = multiprocessing.get_context("fork")
-        self._fill()
+        self._fill(self.workers)
 
-    def _fill(self):
-        while self.next < self.n and len(self.running) < self.workers:
+    def _fill(self, limit):
+        while self.next < self.n and len(self.running) < limit:
             k = self.next
             self.next += 1
-            # start 0 has no earlier start: it is made as the rule makes it (not exploring)
-            self.running[k] = self._fork(k, explore=k > 0)
+            explore = k > 0  # start 0 has no earlier start: it is made as the rule makes it
 
-    def _fork(self, k, explore):
-        receive, send = self.context.Pipe(duplex=False)
-        job = self.job
+            def run(k=k, explore=explore):
+                lines = []
+                return (*self.job(k, explore, lines.append), lines)
 
-        def body():
-            receive.close()
-            # Ctrl-C is the parent's to handle (it ends this process): no wake-up byte into the
-            # parent's Ctrl-C watcher's pipe, and no KeyboardInterrupt half-way through a solve
-            signal.set_wakeup_fd(-1)
-            if signal.getsignal(signal.SIGINT) is signal.default_int_handler:
-                signal.signal(signal.SIGINT, signal.SIG_DFL)
-            lines = []
             try:
-                payload = ("ok", job(k, explore, lines.append), lines)
-            except BaseException as exc:  # the start is made again in the parent, which says it
-                payload = ("error", f"{type(exc).__name__}: {exc}", lines)
-            try:
-                send.send(payload)
-            except Exception as exc:  # noqa: BLE001 - an answer that cannot be pickled
-                send.send(("error", f"the start's result could not be sent back: {exc}", lines))
-            send.close()
-
-        process = self.context.Process(target=body, daemon=True, name=f"slingback-start-{k + 1}")
-        process.start()
-        send.close()
-        return process, receive, explore
+                self.running[k] = (_Child(run), explore)
+            except OSError as exc:  # no process to be had (EAGAIN, ENOMEM): made here instead
+                self.say(f"search: start {k + 1} could not be begun in another process ({exc})")
 
     def take(self, k, explore):
         """Start ``k`` made with ``explore``: (plan, records, chosen, progress lines)."""
-        process, receive, guessed = self.running.pop(k, (None, None, None))
+        begun = self.running.get(k)
         out = None
-        if process is not None and guessed == explore:
-            try:
-                status, result, lines = receive.recv()
+        try:
+            if begun is not None and begun[1] == explore:
+                status, result = begun[0].result()
                 if status == "ok":
-                    out = (*result, lines)
-            except EOFError:  # the process died without an answer (killed, out of memory)
-                pass
-        if process is not None:
-            self._end(process, receive)
-        self._fill()
+                    plan, entries, chosen, lines = result
+                    out = (plan, [{**e, "process": "forked"} for e in entries], chosen, lines)
+                else:
+                    self.say(f"search: start {k + 1} failed in another process ({result}); made here")
+        finally:
+            if begun is not None:  # ended, then forgotten: if an interrupt cuts this short (the
+                begun[0].end()     # command's watcher repeats it), close() ends it
+                del self.running[k]
+        self._fill(self.workers - (out is None))
         if out is None:  # not begun, begun on a wrong guess, or failed there: made here
             lines = []
             out = (*self.job(k, explore, lines.append), lines)
         return out
 
-    @staticmethod
-    def _end(process, receive):
-        receive.close()
-        if process.is_alive():
-            process.terminate()
-        process.join(5.0)
-        if process.is_alive():
-            process.kill()
-            process.join()
-
     def close(self):
-        for process, receive, _ in self.running.values():
-            self._end(process, receive)
-        self.running.clear()
+        """End every process still running; an interrupt during this is raised after it."""
+        interrupted = False
+        while self.running:
+            k = next(iter(self.running))
+            try:
+                self.running[k][0].end()
+                del self.running[k]
+            except KeyboardInterrupt:
+                interrupted = True
+        if interrupted:
+            raise KeyboardInterrupt
 
 
 def _start(record, seed, solve_from, burns, say, **how):

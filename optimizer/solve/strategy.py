@@ -389,8 +389,8 @@ def _global_search(problem, model, tr, run, stages, t_start):
 def _transcription_of(problem, model, plan) -> Transcription:
     """The transcription ``plan``'s warm-start point belongs to: the problem's own on the plan's
     mesh, or that of the problem with its pruned burns fixed at zero (:func:`_prune`)."""
-    zeroed = [j - 1 for j in plan.solver.get("zeroed_burns", [])]
-    return Transcription(_zeroed(problem, plan, zeroed) if zeroed else problem, model,
+    fixed = {int(j) - 1: float(t) for j, t in plan.solver.get("zeroed_epochs_tdb_s", {}).items()}
+    return Transcription(_zeroed(problem, fixed) if fixed else problem, model,
                          list(plan.warm["steps"]), plan.warm["segments"])
 
 
@@ -483,22 +483,27 @@ def _prune(problem, solved: Solved, model, run) -> Solved:
     if not small:
         return solved
     # the epoch of a zero burn is fixed where it is: free, its cut could slide (a degenerate direction)
-    zeroed = _zeroed(problem, plan, small)
+    fixed = {j: plan.burns[j].epoch for j in small}
+    zeroed = _zeroed(problem, fixed)
     run.say(f"re-solving with burn(s) {', '.join(str(j + 1) for j in small)} (under {PRUNE_MPS} m/s) fixed at zero")
     trial = _design(zeroed, plan, model, run)
     if not (trial.plan.verified and trial.plan.total_dv_mps < plan.total_dv_mps):
         return solved
     trial.plan.problem = run.problem_table(problem)
-    trial.plan.solver["zeroed_burns"] = [j + 1 for j in small]
+    # a pruned re-solve may prune again: both sets of burns stay fixed, at the epochs they were
+    # fixed at (the problem of the answer's transcription, rebuilt from them by _transcription_of)
+    fixed.update({int(j) - 1: t for j, t in trial.plan.solver.get("zeroed_epochs_tdb_s", {}).items()})
+    trial.plan.solver["zeroed_burns"] = sorted(j + 1 for j in fixed)
+    trial.plan.solver["zeroed_epochs_tdb_s"] = {str(j + 1): fixed[j] for j in sorted(fixed)}
     trial.plan.solver["attempts"] = plan.solver["attempts"] + trial.plan.solver["attempts"]
     return trial
 
 
 # -- helpers of the chain -------------------------------------------------------------------------
-def _zeroed(problem, plan, small):
-    """``problem`` with burns ``small`` (indices) fixed at zero at ``plan``'s epochs."""
-    return replace(problem, burns=tuple(replace(b, max_dv_mps=0.0, window=(plan.burns[j].epoch,) * 2)
-                                       if j in small else b for j, b in enumerate(problem.burns)))
+def _zeroed(problem, fixed: dict):
+    """``problem`` with the burns of ``fixed`` {index: epoch} fixed at zero at those epochs."""
+    return replace(problem, burns=tuple(replace(b, max_dv_mps=0.0, window=(fixed[j],) * 2)
+                                       if j in fixed else b for j, b in enumerate(problem.burns)))
 
 
 def _cheapest_screened(problem, model) -> float | None:
