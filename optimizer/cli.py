@@ -150,10 +150,34 @@ def _run(args) -> int:
     from .problem_file import ProblemError
 
     try:
+        if args.command in SOLVING:
+            _check_settings()
         return COMMANDS[args.command](args)
-    except (ProblemError, PlanFileError, FileExistsError, OutputPathError) as exc:
+    except (ProblemError, PlanFileError, FileExistsError, OutputPathError, SettingError) as exc:
         _err(f"error: {exc}")
         return EXIT_INPUT
+
+
+class SettingError(ValueError):
+    """An environment setting (``SLINGBACK_*``) with a value the package cannot use."""
+
+
+#: Commands that solve or propagate, and so read the SLINGBACK_* settings.
+SOLVING = ("solve", "check", "demo", "sweep", "dispersion")
+
+
+def _check_settings() -> None:
+    """Each SLINGBACK_* setting a solve reads, read once before any work: a bad value stops the
+    command here with its name (exit 2), not half-way through with a traceback."""
+    from .compiled import mode
+    from .propagate import default_engine
+    from .solve.search import start_workers
+
+    for read in (mode, default_engine, start_workers):
+        try:
+            read()
+        except ValueError as exc:
+            raise SettingError(str(exc)) from None
 
 
 def _err(text: str) -> None:

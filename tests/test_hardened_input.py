@@ -156,3 +156,23 @@ def test_unknown_key_of_a_megabyte_is_not_echoed_whole():
 def test_unknown_key_of_a_megabyte_in_the_error_model_is_not_echoed_whole():
     err = refused(BASE + "\n" + "k" * 1_000_000 + " = 1\n", "unknown key")
     assert len(err) < 2000
+
+
+@pytest.mark.parametrize("name, value", [("SLINGBACK_START_WORKERS", "two"), ("SLINGBACK_START_WORKERS", "0"),
+                                         ("SLINGBACK_COMPILE", "fast"), ("SLINGBACK_PROPAGATOR", "rk4")])
+@pytest.mark.parametrize("command", ["solve", "sweep"])
+def test_bad_setting_exit_2_naming_it_before_any_work(tmp_path, monkeypatch, capsys, name, value, command):
+    """A SLINGBACK_* setting with a value the package cannot use stops the command at the door:
+    exit 2, one line naming the setting, no traceback, nothing written."""
+    from pathlib import Path
+
+    from optimizer.cli import main
+
+    root = Path(__file__).resolve().parents[1]
+    monkeypatch.setenv(name, value)
+    source = root / "problems" / ("demo-abort.toml" if command == "solve" else "demo-trade.toml")
+    out = tmp_path / "run"
+    code = main([command, str(source), "--out", str(out)] + (["--workers", "1"] if command == "sweep" else []))
+    err = capsys.readouterr().err
+    assert code == 2 and f"{name}={value!r}" in err and "Traceback" not in err, err
+    assert not out.exists()
