@@ -104,7 +104,7 @@ def test_a_real_search_makes_the_same_starts_and_plan_with_starts_at_once(model,
                       model=ModelSpec(kind="earth-moon"))
     runs = {}
     for workers in (1, 2):
-        monkeypatch.setattr(strategy, "start_workers", lambda n=workers: n)
+        monkeypatch.setattr(strategy, "start_workers", lambda threads=1, n=workers: n)
         plan, tr = strategy.solve_with_transcription(problem, model=model)
         record = plan.solver["search"]
         runs[workers] = (plan, tr, record)

@@ -70,7 +70,8 @@ def test_starts_made_at_once_give_the_answer_and_record_of_starts_made_one_after
     assert one[0].total_dv_mps == two[0].total_dv_mps == 4.9
     assert one[1]["chosen"] == two[1]["chosen"] == 1
     assert one[2] == two[2] and len(one[2]) == 3
-    assert one[3] == two[3]  # the same progress lines, in the same order
+    assert "starts at once in other processes" in two[3][0]
+    assert one[3] == two[3][1:]  # and then the same progress lines, in the same order
     assert two[1]["start_workers"] == 2
     assert [s.get("process") for s in two[1]["starts"]] == ["forked"] * 3
 
@@ -121,7 +122,9 @@ def test_a_start_the_rule_skips_is_not_begun_early(monkeypatch, tmp_path):
     assert calls.read_text().split() == ["100"]
 
 
-def test_start_workers_are_one_off_the_main_thread_and_a_bad_setting_is_named(monkeypatch):
+def test_start_workers_follow_the_setting_the_cores_and_the_thread_and_name_a_bad_setting(monkeypatch):
+    """As many starts as have their threads' cores each (at most MAX_STARTS); one off the main
+    thread or beside another thread; the setting wins where forking is sound."""
     monkeypatch.setenv("SLINGBACK_START_WORKERS", "3")
     main = threading.main_thread()
     monkeypatch.setattr(threading, "enumerate", lambda: [main])  # whatever other tests left running
@@ -135,6 +138,11 @@ def test_start_workers_are_one_off_the_main_thread_and_a_bad_setting_is_named(mo
     worker.start()
     worker.join()
     assert seen == [1]
+    monkeypatch.delenv("SLINGBACK_START_WORKERS")
+    monkeypatch.setattr(threading, "enumerate", lambda: [main])
+    for cores, threads, n in ((2, 2, 1), (4, 2, 2), (16, 2, 3), (2, 1, 2), (1, 1, 1)):
+        monkeypatch.setattr(os, "sched_getaffinity", lambda pid, c=cores: set(range(c)))
+        assert search.start_workers(threads) == n, (cores, threads)
     monkeypatch.setenv("SLINGBACK_START_WORKERS", "two")
     with pytest.raises(ValueError, match="SLINGBACK_START_WORKERS"):
         search.start_workers()

@@ -356,8 +356,8 @@ def _continuation(problem, run):
 
 def _global_search(problem, model, tr, run, stages, t_start):
     """The global layer (:mod:`optimizer.solve.search`): screened seeds over every burn window, the most
-    promising solved from their own paths, at once on the local cores where that is sound
-    (:func:`~optimizer.solve.search.start_workers`).  Returns (the cheapest verified plan, else
+    promising solved from their own paths, at once where each can have cores of its own and
+    forking is sound (:func:`~optimizer.solve.search.start_workers`).  Returns (the cheapest verified plan, else
     the last plan tried, else None, with its transcription; the search record), the record also
     under ``plan.solver["search"]``."""
     st = problem.start
@@ -376,7 +376,7 @@ def _global_search(problem, model, tr, run, stages, t_start):
         tried.append(solved)
         return solved.plan
 
-    best, record, last = global_solve(problem, model, solve_from, run.say, workers=start_workers())
+    best, record, last = global_solve(problem, model, solve_from, run.say, workers=start_workers(tr.threads))
     plan = best if best is not None else last
     if plan is None:
         return None, record

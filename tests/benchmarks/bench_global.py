@@ -23,6 +23,7 @@ reference, end-to-end seconds; and the goals of the issue, met or missed:
 The table is also written to ``outputs/bench_global-<half>.csv`` (through a temporary file).
 
 Run: python tests/benchmarks/bench_global.py [--half tune|heldout|all] [--cases N] [--workers W] [--segments N]
+     [--map-threads T]  (and SLINGBACK_START_WORKERS=K for the search's starts at once)
      [--recompute-references] [--seeds S [S ...]] [--cached-only] [--rescore CSV]
 """
 
@@ -55,7 +56,7 @@ GOALS = {"verified_pct": 98.0, "within_pct": 97.0, "above_bound": 0, "median_s":
 
 
 def _solve_worker(job):
-    d, segments = job
+    d, segments, threads = job
     warnings.simplefilter("ignore")
     from dataclasses import replace
 
@@ -65,7 +66,11 @@ def _solve_worker(job):
         case = replace(case, problem=replace(case.problem, mesh=replace(case.problem.mesh, segments=segments)))
     t = time.perf_counter()
     try:
-        plan = solve(case.problem)
+        from contextlib import nullcontext
+
+        from optimizer.transcription import map_threads
+        with map_threads(threads) if threads else nullcontext():
+            plan = solve(case.problem)
         status, reason, dv = plan.status, plan.reason, float(plan.total_dv_mps)
         epochs = ";".join(f"{(b.epoch - case.problem.start.epoch) / 3600:.2f}" for b in plan.burns)
         sizes = ";".join(f"{b.dv_mps:.4f}" for b in plan.burns)
@@ -94,6 +99,8 @@ def main(argv=None):
     ap.add_argument("--cached-only", action="store_true",
                     help="only cases already generated; no reference computed (missing ones: no reference)")
     ap.add_argument("--csv", help="write the table here (default outputs/bench_global-<half>.csv)")
+    ap.add_argument("--map-threads", type=int, default=None,
+                    help="threads of each start's mapped segment evaluation (default: the transcription's, 2)")
     ap.add_argument("--segments", type=int, default=None,
                     help="solve every case with this many segments per phase instead of its own mesh's")
     ap.add_argument("--rescore", metavar="CSV[,CSV...]",
@@ -116,11 +123,13 @@ def main(argv=None):
           f"{gc.GENERATOR_VERSION}, scanner {gr.SCANNER_VERSION}; {args.workers} solver process(es); "
           f"load average {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores; SLINGBACK_COMPILE="
           f"{os.environ['SLINGBACK_COMPILE']}, propagator engine {os.environ.get('SLINGBACK_PROPAGATOR', 'default')}"
-          + (f", every case at {args.segments} segments per phase" if args.segments else ""),
+          + (f", every case at {args.segments} segments per phase" if args.segments else "")
+          + (f", {args.map_threads} map thread(s) per start" if args.map_threads else "")
+          + f", SLINGBACK_START_WORKERS={os.environ.get('SLINGBACK_START_WORKERS', '(default)')}",
           flush=True)
 
     rows, by_seed = [], {c.seed: c for c in cases}
-    dicts = [(gc.case_to_dict(c), args.segments) for c in cases]
+    dicts = [(gc.case_to_dict(c), args.segments, args.map_threads) for c in cases]
     t_all = time.perf_counter()
     if args.workers > 1:
         with mp.get_context("spawn").Pool(args.workers) as pool:
