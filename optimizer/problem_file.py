@@ -193,6 +193,10 @@ def problem_from_dict(d: dict, source: str = "<dict>") -> Problem:
             raise limits.error("min_burn_spacing_hours", f"at most {reach_h:g} h (burn #{i} and burn #{i + 1} "
                                                          "cannot be that far apart inside their windows)",
                                spacing_h)
+    if min_alt > lunar_pass.altitude_km[1]:
+        raise limits.error("min_altitude_km", "at most the top of [lunar].perilune_altitude_km "
+                                              f"({lunar_pass.altitude_km[1]:g} km): no perilune could meet both",
+                           min_alt)
     limits.done()
     problem = Problem(name=name, start=start, burns=burns, lunar=lunar_pass, arrival=arrival,
                       objective=objective, model=model, min_burn_spacing_s=spacing_h * 3600.0,
@@ -383,6 +387,9 @@ def _arrival(t: "_Table", start, burns) -> ReturnSpec:
     spec = _flight_path_margin(t, spec)
     if spec.max_duration_days is not None:
         t_last = t0 + spec.max_duration_days * SECONDS_PER_DAY
+        if window is not None and t_last <= window[0]:
+            raise t.error("max_duration_days", "a duration that reaches past the opening of [return].epoch_window "
+                                               f"({format_epoch(window[0], 0)} TDB)", spec.max_duration_days)
         late = next((i for i, b in enumerate(burns, 1) if b.window[0] >= t_last), None)
         if late is not None:
             raise t.error("max_duration_days", f"a duration that reaches past the opening of [[burn]] #{late}'s "

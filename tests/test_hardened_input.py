@@ -176,3 +176,21 @@ def test_bad_setting_exit_2_naming_it_before_any_work(tmp_path, monkeypatch, cap
     err = capsys.readouterr().err
     assert code == 2 and f"{name}={value!r}" in err and "Traceback" not in err, err
     assert not out.exists()
+
+
+def test_duration_ending_before_the_arrival_window_opens_is_refused():
+    """Found by exploratory testing: validate said "valid" and solve died in CasADi with an
+    ill-posed bound (LBX > UBX), exit 1."""
+    start = tomllib.loads(BASE)["start"]["epoch"]
+    from optimizer.timescales import format_epoch, parse_epoch
+
+    opens = format_epoch(parse_epoch(start) + 4 * 86400.0, 0)
+    closes = format_epoch(parse_epoch(start) + 5 * 86400.0, 0)
+    text = mutant("max_duration_days = 6.0",
+                  f'max_duration_days = 2.0\nepoch_window = ["{opens} TDB", "{closes} TDB"]')
+    refused(text, "[return].max_duration_days", "[return].epoch_window")
+
+
+def test_least_altitude_above_the_whole_perilune_range_is_refused():
+    refused(mutant("perilune_altitude_km = [100.0, 5000.0]", "perilune_altitude_km = [0.0, 30.0]"),
+            "[limits].min_altitude_km", "[lunar].perilune_altitude_km")
