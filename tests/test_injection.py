@@ -116,3 +116,22 @@ def test_opm_of_a_parking_start_holds_the_post_injection_state(design, tmp_path)
     assert len(opm.maneuver_parameters) == len(later)
     left = 60000.0 * math.exp(-plan.burns[0].dv_mps / (9.80665 * 421.0))
     assert any(f"{left!r}"[:10] in c for c in sv.comment)
+
+
+def test_a_node_guess_is_moved_by_whole_turns_into_its_window():
+    """Found by exploratory testing: a parking start with raan_window_deg = [0, 360] failed (or
+    landed on a worse node) where the same problem without the window verified, because the
+    guessed node from atan2, in (-180, 180] deg, was clipped to 0 instead of turned by 360 deg."""
+    import math
+
+    from optimizer.solve.guess import into_window
+
+    two_pi = 2.0 * math.pi
+    assert into_window(-2.0, 0.0, two_pi) == pytest.approx(two_pi - 2.0)
+    assert into_window(7.0, 0.0, two_pi) == pytest.approx(7.0 - two_pi)
+    assert into_window(-2.0, -math.pi, math.pi) == -2.0
+    assert into_window(1.0, math.radians(-60.0), math.radians(300.0)) == 1.0
+    # no turn fits: the bound nearest on the circle
+    assert into_window(-2.0, 1.0, 1.5) == 1.5  # 2.78 rad from -2.0 the other way round, 1.0 is 3.0
+    assert into_window(3.0, -1.0, 0.5) == -1.0
+    assert into_window(-3.0, 2.0, 2.5) == 2.5

@@ -270,13 +270,25 @@ def injection_guess(problem, model, tr: Transcription):
     rp = model.earth.radius + st.altitude_km
     v_park = math.sqrt(model.gm_earth / rp) * (-math.sin(u) * pvec + math.cos(u) * qvec)
     if st.raan_window_deg is not None:
-        raan = float(np.clip(raan, *np.radians(st.raan_window_deg)))
+        raan = into_window(raan, *np.radians(st.raan_window_deg))
     arc = _coast(model, t_d, y_d, problem.latest_epoch(), entry_radius=problem.arrival.entry_radius_km)
     burns = [(t_d, y_d[3:] - v_park)]
     burns += [(float(np.clip(t_d + 0.2 * (seed.perilune_epoch - t_d), *b.window)), np.zeros(3))
               for b in problem.burns[1:]]
     start = {"tau_injection": (t_d - tr.sc.t_ref) / tr.sc.tu, "raan": raan, "arg_latitude": u}
     return _sample_phases(problem, model, tr, [arc] * len(tr.phases), burns, t_d) + (start,)
+
+
+def into_window(angle: float, lo: float, hi: float) -> float:
+    """``angle`` (rad) moved by whole turns into ``[lo, hi]`` when a turn fits, else the bound
+    nearest to it on the circle.  (An angle from ``atan2`` lies in (-pi, pi]: clipping it into a
+    window given as [0, 360] deg sent every negative node to 0, a far worse start.)"""
+    turn = 2.0 * math.pi
+    inside = angle + turn * math.ceil((lo - angle) / turn)  # the least equivalent angle >= lo
+    if inside <= hi:
+        return float(inside)
+    gap = lambda bound: abs((angle - bound + math.pi) % turn - math.pi)  # noqa: E731
+    return float(min((lo, hi), key=gap))
 
 
 def _sample_phases(problem, model, tr, arcs, burns, t_start):
