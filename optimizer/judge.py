@@ -182,6 +182,14 @@ def _start_rows(problem, t0, y0, model) -> list[ConstraintRow]:
             row("parking speed minus circular", float(np.linalg.norm(v)) - math.sqrt(model.gm_earth / rn), 0.0, 0.0,
                 "km/s", 1e-6),
             row("parking flight-path angle", math.degrees(flight_path_angle(r, v)), 0.0, 0.0, "deg", 1e-6)]
+    # the node the solve chose (right ascension of the ascending node), shown even when free; with
+    # a window, the angle turned by whole turns to the least value at or above the window's start
+    node = math.degrees(math.atan2(float(h[0]), float(-h[1])))
+    window = st.raan_window_deg
+    if window is not None:
+        node = window[0] + (node - window[0]) % 360.0
+    rows.append(row("parking node (right ascension of the ascending node)", node,
+                    *(window if window is not None else (None, None)), "deg", 1e-6))
     return rows
 
 

@@ -81,6 +81,24 @@ def test_the_path_starts_on_the_parking_orbit(design):
     assert abs(inclination_deg(y) - problem.start.inclination_deg) < 1e-6
 
 
+def test_the_chosen_node_is_reported_and_judged_against_its_window(design):
+    """The node the solve chose, computed here from the plan's start state (the ascending node lies
+    along z x h, its right ascension atan2(h_x, -h_y): the classical-elements formula of Curtis,
+    from memory), is a row of the verdict judged against raan_window_deg."""
+    problem, plan = design
+    y = np.asarray(plan.start_state)
+    h = np.cross(y[:3], y[3:])
+    node = math.degrees(math.atan2(h[0], -h[1]))
+    rows = [c for c in plan.verification.constraints if c.name.startswith("parking node")]
+    assert len(rows) == 1
+    got = rows[0]
+    assert math.isclose(math.cos(math.radians(got.value - node)), 1.0, abs_tol=1e-12)
+    window = problem.start.raan_window_deg
+    if window is not None:
+        assert (got.lo, got.hi) == tuple(window) and window[0] <= got.value <= window[1]
+    assert got.state in ("active", "inactive")
+
+
 def test_injection_along_velocity_is_tangential(design):
     problem, plan = design
     if problem.burns[0].direction != "along":
