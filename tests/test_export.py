@@ -597,3 +597,23 @@ def test_every_run_folder_is_checked_against_the_schema(case, tmp_path, monkeypa
     with pytest.raises(AssertionError, match="plan.schema.json"):
         write_run(plan, problem, tmp_path / "bad", model=model)
     assert not (tmp_path / "bad").exists()
+
+
+def test_search_figure_of_a_zero_dv_answer_warns_of_nothing(case, tmp_path):
+    """Found by exploratory testing: a start already on a free return (every seed 0 m/s) made
+    matplotlib warn on stderr that the Δv axis could not be log-scaled, and a figure without
+    labelled lines warned of an empty legend.  Warnings are errors here."""
+    import warnings
+    from dataclasses import replace
+
+    from optimizer.export.figures import write_search_figure
+
+    problem, model, plan = case
+    seeds = [{"burn": 1, "epoch_tdb_s": plan.start_epoch + 3600.0 * k, "family": "same side, same sense",
+              "screened_dv_mps": 0.0, "outcome": "screened", "screen_s": 0.0} for k in range(1, 4)]
+    starts = [{**seeds[0], "status": "verified", "total_dv_mps": 0.0}]
+    zero = replace(plan, solver={**plan.solver, "search": {"seeds": seeds, "starts": starts, "chosen": 0}})
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert write_search_figure(zero, problem, tmp_path, model_name="test") == ["search.png"]
+    assert (tmp_path / "search.png").stat().st_size > 0

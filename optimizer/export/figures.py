@@ -53,6 +53,12 @@ def _style(ax, title):
     ax.grid(color=PALETTE["guide"], linewidth=0.4, alpha=0.6)
 
 
+def _legend(ax, size) -> None:
+    """A legend when something on the axes has a label (matplotlib warns on an empty one)."""
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(fontsize=size, frameon=False, loc="best")
+
+
 def _save(fig, path, plan, model_name):
     status = plan.status.upper() + ("" if plan.verified else " - NOT VERIFIED")
     fig.tight_layout(rect=(0, 0.07, 1, 1))
@@ -101,7 +107,7 @@ def write_figures(sampled, plan, problem, out_dir, *, earth_radius_km: float, mo
     ax.set_xlabel("x, 1000 km (ICRF)", color=ink, fontsize=8)
     ax.set_ylabel("y, 1000 km (ICRF)", color=ink, fontsize=8)
     _style(ax, f"{plan.name}: path, Earth-centred inertial")
-    ax.legend(fontsize=7, frameon=False, loc="best")
+    _legend(ax, 7)
     _save(fig, out_dir / "path-inertial.png", plan, model_name)
     written.append("path-inertial.png")
 
@@ -118,7 +124,7 @@ def write_figures(sampled, plan, problem, out_dir, *, earth_radius_km: float, mo
         ax.set_xlabel("x towards the Moon, 1000 km", color=ink, fontsize=8)
         ax.set_ylabel("y, 1000 km", color=ink, fontsize=8)
         _style(ax, f"{plan.name}: path, Earth-Moon rotating frame")
-        ax.legend(fontsize=7, frameon=False, loc="best")
+        _legend(ax, 7)
         _save(fig, out_dir / "path-rotating.png", plan, model_name)
         written.append("path-rotating.png")
 
@@ -140,7 +146,7 @@ def write_figures(sampled, plan, problem, out_dir, *, earth_radius_km: float, mo
     ax.set_xlabel(f"days since {format_epoch(sampled.t[0], 0)} TDB", color=ink, fontsize=8)
     ax.set_ylabel("altitude, km", color=ink, fontsize=8)
     _style(ax, f"{plan.name}: altitude")
-    ax.legend(fontsize=7, frameon=False, loc="best")
+    _legend(ax, 7)
     _save(fig, out_dir / "altitude.png", plan, model_name)
     written.append("altitude.png")
 
@@ -197,8 +203,14 @@ def write_search_figure(plan, problem, out_dir, *, model_name: str) -> list[str]
             ax.axvline((edge - t0) / 3600.0, color=PALETTE["guide"], lw=0.8, ls=":")
     ax.set_xlabel("burn epoch, hours after the start (TDB)", color=PALETTE["ink"], fontsize=8)
     ax.set_ylabel("Δv, m/s", color=PALETTE["ink"], fontsize=8)
-    ax.set_yscale("log")
+    plotted = [s["screened_dv_mps"] for s in search["seeds"] if s["screened_dv_mps"] is not None]
+    plotted += [s["total_dv_mps"] for s in search.get("starts", []) if s.get("total_dv_mps") is not None]
+    if plotted and min(plotted) > 0:
+        ax.set_yscale("log")
+    else:  # a zero Δv (a start already on a free return) has no logarithm: linear near zero
+        ax.set_yscale("symlog", linthresh=max(1e-3, min((y for y in plotted if y > 0), default=1e-3)))
+        ax.set_ylim(bottom=0.0)
     _style(ax, f"{plan.name}: global search, Δv against burn epoch (dotted: burn windows)")
-    ax.legend(fontsize=6, frameon=False, loc="best")
+    _legend(ax, 6)
     _save(fig, Path(out_dir) / "search.png", plan, model_name)
     return ["search.png"]
