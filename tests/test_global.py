@@ -188,3 +188,16 @@ def test_a_start_that_ends_far_above_its_seed_is_solved_again(monkeypatch):
     assert best.total_dv_mps == 36.269
     assert calls == [(100.0, False, False), (100.0, False, True), (200.0, True, False)]
     assert record["chosen"] == 1 and record["starts"][1].get("uphill") is True
+
+
+def test_a_failed_search_says_when_the_coast_passes_no_moon_ahead():
+    """Found by exploratory testing: a start 10 h after the lunar pass failed with "0 seeds
+    screened" and no hint why; the reason now says the coast meets no lunar pass ahead, and
+    start epochs are calendar epochs, not raw TDB seconds."""
+    from optimizer.solve.search import search_summary
+
+    behind = search_summary({"seeds": [], "starts": [], "ballistic_perilune_tdb_s": None})
+    assert "passes the Moon nowhere ahead of the start" in behind
+    start = {"burn": 1, "epoch_tdb_s": T_START, "family": "same side, same sense", "status": "failed"}
+    ahead = search_summary({"seeds": [], "starts": [start], "ballistic_perilune_tdb_s": T_PERI})
+    assert "nowhere ahead" not in ahead and "2033-07-19T17:00:00 TDB" in ahead

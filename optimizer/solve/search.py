@@ -21,7 +21,7 @@ of Earth, the Moon passed on either side).  This module:
 
 Every seed and start is recorded (``plan.solver["search"]``) so the report can show the landscape.
 
-May import: constants, problem, models, propagate, events, interrupt.  Never the wing's ``guess``, ``ipopt`` or
+May import: constants, problem, models, propagate, events, interrupt, timescales.  Never the wing's ``guess``, ``ipopt`` or
 ``strategy``: the chain calls :func:`global_solve` with a ``solve_from`` function of its own.
 """
 
@@ -42,6 +42,7 @@ import numpy as np
 from ..constants import SECONDS_PER_DAY
 from ..events import RETURN_RADIUS_KM, encounter_radius
 from ..interrupt import WATCHER_NAME
+from ..timescales import format_epoch
 from ..propagate import propagate
 
 #: Seed epochs per burn window (both ends included).
@@ -840,10 +841,14 @@ def search_summary(record) -> str:
     text = f"the global search screened {len(seeds)} seeds ({ok} met the ranges"
     text += ("; " + ", ".join(f"{n} {w}" for w, n in why.items())) if why else ""
     text += ")"
+    if "ballistic_perilune_tdb_s" in record and record["ballistic_perilune_tdb_s"] is None:
+        text += ("; the coast without burns passes the Moon nowhere ahead of the start, so no burn "
+                 "after a lunar pass could be seeded (is the pass already behind the start?)")
     starts = record.get("starts", [])
     if starts:
         text += "; starts solved: " + ", ".join(
-            f"burn {s['burn']} at {s['epoch_tdb_s']:.0f} s ({s['family']}): {s.get('status')}" for s in starts)
+            f"burn {s['burn']} at {format_epoch(s['epoch_tdb_s'], 0)} TDB ({s['family']}): {s.get('status')}"
+            for s in starts)
     return text
 
 
