@@ -21,7 +21,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 
 from .constants import SECONDS_PER_DAY
-from .frames import flight_path_angle
+from .frames import cartesian_to_kepler, flight_path_angle
 
 __all__ = ["ConstraintRow", "ACTIVE_TOL", "judge", "failed_rows", "DEFAULT_DURATION_DAYS"]
 
@@ -184,7 +184,7 @@ def _start_rows(problem, t0, y0, model) -> list[ConstraintRow]:
             row("parking flight-path angle", math.degrees(flight_path_angle(r, v)), 0.0, 0.0, "deg", 1e-6)]
     # the node the solve chose (right ascension of the ascending node), shown even when free; with
     # a window, the angle turned by whole turns to the least value at or above the window's start
-    node = math.degrees(math.atan2(float(h[0]), float(-h[1])))
+    node = math.degrees(cartesian_to_kepler(r, v, model.gm_earth).raan)
     window = st.raan_window_deg
     if window is not None:
         node = window[0] + (node - window[0]) % 360.0
