@@ -21,8 +21,9 @@ of Earth, the Moon passed on either side).  This module:
 
 Every seed and start is recorded (``plan.solver["search"]``) so the report can show the landscape.
 
-May import: constants, problem, models, propagate, events, interrupt, timescales.  Never the wing's ``guess``, ``ipopt`` or
-``strategy``: the chain calls :func:`global_solve` with a ``solve_from`` function of its own.
+May import: constants, problem, models, propagate, events, interrupt, timescales.  Never the wing's
+``guess``, ``ipopt`` or ``strategy``: the chain calls :func:`global_solve` with a ``solve_from``
+function of its own.
 """
 
 from __future__ import annotations
@@ -42,8 +43,8 @@ import numpy as np
 from ..constants import SECONDS_PER_DAY
 from ..events import RETURN_RADIUS_KM, encounter_radius
 from ..interrupt import WATCHER_NAME
-from ..timescales import format_epoch
 from ..propagate import propagate
+from ..timescales import format_epoch
 
 #: Seed epochs per burn window (both ends included).
 EPOCHS = 9
@@ -531,10 +532,10 @@ def start_workers(threads_per_start: int = 1) -> int:
     two starts of two threads each gain nothing over one after another; with a core each, the
     cases with several starts took 18 % less time; so starts run at once only on cores of their
     own.  Starts run in forked processes (IPOPT and its linear solver are not thread-safe), so
-    only where forking is sound: on Linux, in the main
-    thread of a process that runs no other Python thread (but the command's Ctrl-C watcher,
-    :data:`~optimizer.interrupt.WATCHER_NAME`, which holds no lock) and is not itself a worker
-    process (a trade study's or dispersion run's workers already use the cores).  Anywhere else: 1."""
+    only where forking is sound: on Linux, in the main thread of a process that runs no other
+    Python thread (but the command's Ctrl-C watcher, :data:`~optimizer.interrupt.WATCHER_NAME`,
+    which holds no lock) and is not itself a worker process (a trade study's or dispersion run's
+    workers already use the cores).  Anywhere else: 1."""
     text = os.environ.get("SLINGBACK_START_WORKERS", "").strip()
     if text:
         try:
@@ -612,14 +613,15 @@ def global_solve(problem, model, solve_from, say=lambda m: None, workers=1):
 
     best, last = None, None
     # a later start is begun early only if the rule would make it after a verified plan as cheap
-    # as the first start's screen (verified answers are normally at or a little below it)
-    hopeful = [k for k, s in enumerate(picked) if s.dv_mps <= SKIP_RATIO * picked[0].dv_mps + SKIP_MPS]
+    # as the first start's screen (verified answers are normally at or a little below it); the
+    # starts are sorted by screened Δv, so these are the first ``hopeful``
+    hopeful = sum(s.dv_mps <= SKIP_RATIO * picked[0].dv_mps + SKIP_MPS for s in picked)
     ahead = None
     try:
-        if workers > 1 and len(hopeful) > 1:
-            say(f"search: up to {min(workers, len(hopeful))} of {len(picked)} starts at once in other processes; "
+        if workers > 1 and hopeful > 1:
+            say(f"search: up to {min(workers, hopeful)} of {len(picked)} starts at once in other processes; "
                 "the progress of each follows when it ends")
-            ahead = _Ahead(job, len(hopeful), workers, say)
+            ahead = _Ahead(job, hopeful, workers, say)
         for k, s in enumerate(picked):
             if best is not None and s.dv_mps > SKIP_RATIO * best.total_dv_mps + SKIP_MPS:
                 break
@@ -806,21 +808,21 @@ class _Ahead:
             raise KeyboardInterrupt
 
 
-def _start(record, seed, solve_from, burns, say, **how):
-    """One NLP start from ``seed`` (``how``: ``solve_from``'s flags), recorded in the list
-    ``record``; returns its plan, or None when the seed gave no starting point."""
+def _start(entries, seed, solve_from, burns, say, **how):
+    """One NLP start from ``seed`` (``how``: ``solve_from``'s flags), its record appended to
+    ``entries``; returns its plan, or None when the seed gave no starting point."""
     t0 = time.perf_counter()
     entry = {**seed.record(), **{k: True for k, v in how.items() if v}}
     try:
         plan = solve_from(burns, say=say, **how)
     except ValueError as exc:  # SolveError: no starting point from this seed
-        record.append({**entry, "status": "no starting point", "reason": str(exc),
-                       "wall_s": round(time.perf_counter() - t0, 3)})
+        entries.append({**entry, "status": "no starting point", "reason": str(exc),
+                        "wall_s": round(time.perf_counter() - t0, 3)})
         return None
-    record.append({**entry, "status": plan.status, "total_dv_mps": plan.total_dv_mps,
-                   "burn_epochs_tdb_s": [b.epoch for b in plan.burns],
-                   "iterations": plan.solver.get("iterations"),
-                   "wall_s": round(time.perf_counter() - t0, 3)})
+    entries.append({**entry, "status": plan.status, "total_dv_mps": plan.total_dv_mps,
+                    "burn_epochs_tdb_s": [b.epoch for b in plan.burns],
+                    "iterations": plan.solver.get("iterations"),
+                    "wall_s": round(time.perf_counter() - t0, 3)})
     return plan
 
 
