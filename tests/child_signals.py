@@ -1,6 +1,9 @@
-"""Signal set-up for child processes that a test or benchmark interrupts with SIGINT."""
+"""Signal set-up for child processes that a test or benchmark interrupts with SIGINT, and what
+the tests look at afterwards (a process's children, the live processes of a group)."""
 
 import signal
+import subprocess
+from pathlib import Path
 
 
 def ctrl_c_as_from_a_terminal():
@@ -12,3 +15,18 @@ def ctrl_c_as_from_a_terminal():
     For ``subprocess``'s ``preexec_fn``."""
     signal.signal(signal.SIGINT, signal.SIG_DFL)
     signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
+
+
+def children(pid: int) -> list[str]:
+    """The process ids of ``pid``'s children (Linux lists them under /proc); [] once it ended."""
+    try:
+        return Path(f"/proc/{pid}/task/{pid}/children").read_text().split()
+    except OSError:
+        return []
+
+
+def running_in_group(pgid: int) -> list[str]:
+    """``ps`` lines of the processes of group ``pgid`` that are not dead (a child whose parent
+    ended waits, as a zombie, for the machine's init to reap it: it runs no more)."""
+    ps = subprocess.run(["ps", "-o", "stat=,pid=,cmd=", "-g", str(pgid)], capture_output=True, text=True)
+    return [line for line in ps.stdout.splitlines() if line.strip() and not line.lstrip().startswith("Z")]

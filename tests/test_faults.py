@@ -19,7 +19,7 @@ from pathlib import Path
 
 import pytest
 
-from child_signals import ctrl_c_as_from_a_terminal
+from child_signals import children, ctrl_c_as_from_a_terminal, running_in_group
 from export_fixture import make_case
 from optimizer.export import plan_json
 from optimizer.problem_file import dumps_toml, problem_to_dict
@@ -261,11 +261,11 @@ def test_ctrl_c_while_starts_run_at_once_exits_130_with_one_line_and_writes_noth
                          env={**os.environ, "PYTHONPATH": str(ROOT), "SLINGBACK_START_WORKERS": "2"},
                          stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                          preexec_fn=ctrl_c_as_from_a_terminal, start_new_session=True)
-    def starts():  # Linux lists a process's children; a forked start runs the command's own line
+
+    def starts():  # a forked start runs the command's own line
         try:
-            kids = Path(f"/proc/{p.pid}/task/{p.pid}/children").read_text().split()
-            return [k for k in kids if b"optimizer.cli" in Path(f"/proc/{k}/cmdline").read_bytes()]
-        except OSError:  # the command or the child has just ended
+            return [k for k in children(p.pid) if b"optimizer.cli" in Path(f"/proc/{k}/cmdline").read_bytes()]
+        except OSError:  # the child has just ended
             return []
 
     for _ in range(1200):
@@ -284,18 +284,12 @@ def test_ctrl_c_while_starts_run_at_once_exits_130_with_one_line_and_writes_noth
     assert lines[-1] == "slingback: interrupted (Ctrl-C); solve stopped, nothing written"
     assert "Traceback" not in err and "Exception ignored" not in err
     assert list(tmp_path.iterdir()) == []
-
-    def running():  # the group's processes that are not dead (a dead child whose parent
-        # ended waits, as a zombie, for the machine's init to reap it)
-        ps = subprocess.run(["ps", "-o", "stat=,pid=,cmd=", "-g", str(p.pid)], capture_output=True, text=True)
-        return [line for line in ps.stdout.splitlines() if line.strip() and not line.lstrip().startswith("Z")]
-
     for _ in range(4):  # a killed start ends in a moment; one left running goes on for its solve
-        if not running():
+        if not running_in_group(p.pid):
             break
         time.sleep(0.05)
     else:
-        raise AssertionError("a process of the command's group outlived it: " + "; ".join(running()))
+        raise AssertionError("a process of the command's group outlived it: " + "; ".join(running_in_group(p.pid)))
 
 
 # Modules the command imports in turn: its own start (handler installed before them), main()

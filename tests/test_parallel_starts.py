@@ -231,25 +231,18 @@ def test_ctrl_c_ends_every_start_process(tmp_path, to):
     import sys
     from pathlib import Path
 
-    from child_signals import ctrl_c_as_from_a_terminal
+    from child_signals import children, ctrl_c_as_from_a_terminal, running_in_group
 
     root = Path(__file__).resolve().parents[1]
     p = subprocess.Popen([sys.executable, "-c", INTERRUPTED_SEARCH], cwd=tmp_path,
                          env={**os.environ, "PYTHONPATH": str(root)}, stdout=subprocess.PIPE,
                          stderr=subprocess.PIPE, text=True, preexec_fn=ctrl_c_as_from_a_terminal,
                          start_new_session=True)
-
-    def children():
-        try:
-            return Path(f"/proc/{p.pid}/task/{p.pid}/children").read_text().split()
-        except OSError:
-            return []
-
     for _ in range(600):
-        if p.poll() is not None or len(children()) >= 2:
+        if p.poll() is not None or len(children(p.pid)) >= 2:
             break
         time.sleep(0.05)
-    assert len(children()) == 2, p.communicate(timeout=10)
+    assert len(children(p.pid)) == 2, p.communicate(timeout=10)
     if to == "group":
         os.killpg(p.pid, signal.SIGINT)
     else:
@@ -257,13 +250,8 @@ def test_ctrl_c_ends_every_start_process(tmp_path, to):
     out, err = p.communicate(timeout=60)
     assert p.returncode == 130 and out.strip() == "interrupted", (p.returncode, out, err)
     assert err == ""
-
-    def running():  # processes of the group that are not dead (zombies wait for init to reap them)
-        ps = subprocess.run(["ps", "-o", "stat=,pid=", "-g", str(p.pid)], capture_output=True, text=True)
-        return [line for line in ps.stdout.splitlines() if line.strip() and not line.lstrip().startswith("Z")]
-
     for _ in range(20):
-        if not running():
+        if not running_in_group(p.pid):
             break
         time.sleep(0.05)
-    assert not running(), running()
+    assert not running_in_group(p.pid), running_in_group(p.pid)
