@@ -150,8 +150,8 @@ def _run(args) -> int:
     from .problem_file import ProblemError
 
     try:
-        if args.command in SOLVING:
-            _check_settings()
+        if args.command in SETTINGS_READ:
+            _check_settings(args.command)
         return COMMANDS[args.command](args)
     except (ProblemError, PlanFileError, FileExistsError, OutputPathError, SettingError) as exc:
         _err(f"error: {exc}")
@@ -162,18 +162,24 @@ class SettingError(ValueError):
     """An environment setting (``SLINGBACK_*``) with a value the package cannot use."""
 
 
-#: Commands that solve or propagate, and so read the SLINGBACK_* settings.
-SOLVING = ("solve", "check", "demo", "sweep", "dispersion")
+#: Commands that read SLINGBACK_* settings: all of them the propagator engine; all but ``check``
+#: (which only re-propagates) also the compile mode and the starts at once of a solve.
+SETTINGS_READ = ("solve", "check", "demo", "sweep", "dispersion")
 
 
-def _check_settings() -> None:
-    """Each SLINGBACK_* setting a solve reads, read once before any work: a bad value stops the
-    command here with its name (exit 2), not half-way through with a traceback."""
-    from .compiled import mode
+def _check_settings(command: str) -> None:
+    """Each SLINGBACK_* setting ``command`` reads, read once before any work: a bad value stops
+    the command here with its name (exit 2), not half-way through with a traceback.  ``check``
+    imports nothing of the solver for it."""
     from .propagate import default_engine
-    from .solve.search import start_workers
 
-    for read in (mode, default_engine, start_workers):
+    reads = [default_engine]
+    if command != "check":
+        from .compiled import mode
+        from .solve.search import start_workers
+
+        reads += [mode, start_workers]
+    for read in reads:
         try:
             read()
         except ValueError as exc:
